@@ -1,0 +1,393 @@
+"""Typed, frozen configuration for every stage, with documented defaults and their sources.
+
+Each stage has one dataclass. Every field carries ``doc`` (what it means, with units), ``source``
+(where the default comes from) and, where it applies, ``choices`` or a numeric ``range``. All checks
+run in :meth:`Config.validate` before any record is read, and every problem is reported at once.
+
+Example
+-------
+>>> from prep.config import Config
+>>> cfg = Config().replace(bandpass={"high_hz": 35.0})
+>>> cfg.bandpass.high_hz
+35.0
+"""
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import math
+import tomllib
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+from .errors import ConfigError
+
+
+def _f(default, doc: str, source: str, *, choices=None, lo=None, hi=None, lo_open=False,
+       factory=None):
+    meta = {"doc": doc, "source": source, "choices": choices, "lo": lo, "hi": hi,
+            "lo_open": lo_open}
+    if factory is not None:
+        return field(default_factory=factory, metadata=meta)
+    return field(default=default, metadata=meta)
+
+
+@dataclass(frozen=True)
+class ReadConfig:
+    csv_fs_hz: float = _f(0.0, "Sampling rate of CSV inputs in Hz; 0 means take it from the sidecar "
+                          "JSON (same name, .json) and fail the record if there is none.",
+                          "no default rate can be guessed safely", lo=0.0)
+    annotation_extension: str = _f("atr", "WFDB annotation file extension read as the reference "
+                                   "beat labels (record.EXT). Missing file: no labels.",
+                                   "WFDB convention: .atr holds reference annotations")
+    label_window_ms: float = _f(150.0, "A reference annotation labels a beat when it lies within "
+                                "this many ms of the beat's R.",
+                                "AAMI EC57 beat-matching window (150 ms)", lo=1.0, hi=1000.0)
+
+
+@dataclass(frozen=True)
+class LeadsConfig:
+    select: list = _f(None, "Lead axis of the dataset, in order (canonical or alias names, "
+                      "case-insensitive, e.g. [\"II\", \"V5\"]). Empty: the ECG leads every record "
+                      "shares (see docs/leads.md for the order).",
+                      "design choice: a fixed lead axis per dataset", factory=list)
+    drop_incomplete_beats: bool = _f(False, "Exclude beats that miss a lead of the axis (reason "
+                                     "lead_missing) instead of keeping them zero-filled with "
+                                     "lead_mask False.", "design choice")
+
+
+@dataclass(frozen=True)
+class PowerlineConfig:
+    enabled: bool = _f(True, "Detect the mains frequency and notch it and its harmonics.",
+                       "design choice")
+    candidates_hz: list = _f(None, "Mains frequencies to test, in Hz.",
+                             "IEC 60038 nominal mains frequencies (50 and 60 Hz)",
+                             factory=lambda: [50.0, 60.0])
+    min_peak_db: float = _f(6.0, "A candidate counts as present when its spectral peak stands at "
+                            "least this many dB above the neighbouring spectrum (2 to 5 Hz away).",
+                            "common practice, no source", lo=0.0, hi=60.0)
+    quality_factor: float = _f(30.0, "Notch quality factor Q (bandwidth = f0 / Q).",
+                               "common practice, no source (scipy.signal.iirnotch example uses 30)",
+                               lo=1.0, hi=200.0)
+    harmonics: bool = _f(True, "Also notch every harmonic below 0.95 x Nyquist.", "design choice")
+
+
+@dataclass(frozen=True)
+class BandpassConfig:
+    enabled: bool = _f(True, "Apply the zero-phase Butterworth band-pass.", "design choice")
+    low_hz: float = _f(0.67, "Lower edge in Hz, where the delivered zero-phase response is 3 dB "
+                       "down.", "AHA/ACC/HRS 2007 (Kligfield et al.): 0.67 Hz allowed for "
+                       "zero-phase digital filters; monitoring standards ask -3 dB at 0.67 Hz",
+                       lo=0.0, lo_open=True, hi=10.0)
+    high_hz: float = _f(40.0, "Upper edge in Hz, where the delivered zero-phase response is 3 dB "
+                        "down; lowered to 0.45 x fs on records whose Nyquist is below it (recorded).",
+                        "monitoring-mode bandwidth 0.67-40 Hz (IEC 60601-2-27, from memory); "
+                        "40 Hz is also common in beat-classification work",
+                        lo=1.0, hi=500.0)
+    order: int = _f(2, "Butterworth order of each edge (applied forward and backward, so the "
+                    "delivered roll-off is twice as steep).", "common practice, no source",
+                    lo=1, hi=8)
+
+
+@dataclass(frozen=True)
+class BaselineConfig:
+    method: str = _f("median", "Baseline-wander removal: 'median' (two-stage median filter), "
+                     "'highpass' (extra zero-phase Butterworth high-pass) or 'none'.",
+                     "de Chazal, O'Dwyer & Reilly 2004 (IEEE TBME 51:1196) use the two-stage median",
+                     choices=["median", "highpass", "none"])
+    first_window_ms: float = _f(200.0, "First median window in ms (removes QRS and P).",
+                                "de Chazal et al. 2004: 200 ms", lo=20.0, hi=2000.0)
+    second_window_ms: float = _f(600.0, "Second median window in ms (removes T).",
+                                 "de Chazal et al. 2004: 600 ms", lo=20.0, hi=5000.0)
+    highpass_hz: float = _f(0.5, "Corner of the 'highpass' method in Hz (3 dB down, zero-phase).",
+                            "common practice, no source", lo=0.01, hi=5.0)
+
+
+@dataclass(frozen=True)
+class RpeaksConfig:
+    min_rr_ms: float = _f(250.0, "Refractory period: two beats in one lead are never closer.",
+                          "physiological refractory period ~200-250 ms (Pan & Tompkins 1985 use 200 ms)",
+                          lo=100.0, hi=600.0)
+    threshold: float = _f(0.6, "A candidate QRS is accepted when its energy-envelope peak exceeds "
+                          "this fraction of the local reference peak height.",
+                          "tuned on synthetic records and MIT-BIH 100/105/119 (docs/rpeaks.md)",
+                          lo=0.05, hi=1.0)
+    searchback_threshold: float = _f(0.2, "Lower fraction used when searching back in an RR gap "
+                                     "longer than searchback_rr x the local median RR.",
+                                     "Pan & Tompkins 1985 search-back idea; value tuned as above",
+                                     lo=0.01, hi=1.0)
+    searchback_rr: float = _f(1.6, "RR gap, as a multiple of the local median RR, that triggers a "
+                              "search back.", "Pan & Tompkins 1985 use 166% of the RR average",
+                              lo=1.1, hi=4.0)
+    fuse_window_ms: float = _f(100.0, "Detections in different leads closer than this are one beat.",
+                               "common practice, no source", lo=10.0, hi=150.0)
+    refine_window_ms: float = _f(60.0, "R is moved to the lead's QRS extremum within +- this many ms.",
+                                 "common practice, no source", lo=0.0, hi=150.0)
+    min_lead_template_corr: float = _f(0.5, "A lead counts as locally good for one-lead beats when "
+                                       "its beats' median correlation with the lead's QRS template "
+                                       "in the surrounding 10 s window reaches this.",
+                                       "template-matching SQI, Orphanidou et al. 2015 (IEEE JBHI)",
+                                       lo=-1.0, hi=1.0)
+
+
+@dataclass(frozen=True)
+class SegmentConfig:
+    mode: str = _f("fixed", "'fixed': before_ms / after_ms around R; 'rr': before_rr x previous RR "
+                   "and after_rr x next RR.", "design choice", choices=["fixed", "rr"])
+    before_ms: float = _f(250.0, "Window start before R in ms (mode 'fixed').",
+                          "common practice, no source (covers the P wave at rest)", lo=20.0, hi=2000.0)
+    after_ms: float = _f(400.0, "Window end after R in ms (mode 'fixed').",
+                         "common practice, no source (covers the T wave at rest)", lo=20.0, hi=3000.0)
+    before_rr: float = _f(0.35, "Window start before R as a fraction of the previous RR (mode 'rr').",
+                          "common practice, no source", lo=0.05, hi=1.0)
+    after_rr: float = _f(0.6, "Window end after R as a fraction of the next RR (mode 'rr').",
+                         "common practice, no source", lo=0.05, hi=1.5)
+
+
+@dataclass(frozen=True)
+class ResampleConfig:
+    n_samples: int = _f(256, "Samples per beat and lead in the tensor.",
+                        "common practice, no source (a power of two suits convolutional models)",
+                        lo=8, hi=8192)
+
+
+@dataclass(frozen=True)
+class NormalizeConfig:
+    method: str = _f("zscore", "'zscore' (mean/std), 'minmax' (to [0, 1]), 'robust' (median/IQR) "
+                     "or 'none'.", "design choice", choices=["zscore", "minmax", "robust", "none"])
+    scope: str = _f("beat", "Statistics per 'beat' (and lead), per 'record' (and lead), or over the "
+                    "whole 'dataset' (per lead).", "design choice",
+                    choices=["beat", "record", "dataset"])
+
+
+@dataclass(frozen=True)
+class QualityConfig:
+    flat_ms: float = _f(100.0, "A run of identical samples at least this long counts as flat.",
+                        "common practice, no source", lo=5.0, hi=10000.0)
+    clip_run_samples: int = _f(3, "A run of at least this many samples at the lead's extreme value "
+                               "counts as clipped.", "common practice, no source", lo=2, hi=1000)
+    max_bad_fraction_in_beat: float = _f(0.02, "A beat is excluded when more than this fraction of "
+                                         "its window is flat or clipped in a used lead.",
+                                         "common practice, no source", lo=0.0, hi=1.0)
+    max_hf_ratio: float = _f(0.25, "A beat is excluded when the RMS of its >40 Hz residual exceeds "
+                             "this fraction of its peak-to-peak amplitude (median over leads).",
+                             "common practice, no source", lo=0.0, lo_open=True, hi=10.0)
+    flag_template_corr: float = _f(0.6, "A kept beat whose correlation with the running median beat "
+                                   "is below this gets the flag unlike_neighbours.",
+                                   "common practice, no source", lo=-1.0, hi=1.0)
+    exclude_template_corr: float = _f(0.0, "A beat whose correlation with the running median beat is "
+                                      "below this is excluded (unlike_neighbours). Low on purpose: "
+                                      "ectopic beats are unlike their neighbours and must stay.",
+                                      "common practice, no source", lo=-1.0, hi=1.0)
+    template_beats: int = _f(31, "Beats in the running median template (odd).",
+                             "common practice, no source", lo=3, hi=1001)
+    min_usable_fraction: float = _f(0.5, "A lead is rejected for a record when less than this "
+                                    "fraction of it is free of flat and clipped stretches.",
+                                    "common practice, no source", lo=0.0, hi=1.0)
+
+
+SECTIONS: dict[str, type] = {
+    "read": ReadConfig, "leads": LeadsConfig, "powerline": PowerlineConfig,
+    "bandpass": BandpassConfig, "baseline": BaselineConfig, "rpeaks": RpeaksConfig,
+    "segment": SegmentConfig, "resample": ResampleConfig, "normalize": NormalizeConfig,
+    "quality": QualityConfig,
+}
+
+
+@dataclass(frozen=True)
+class Config:
+    """The whole resolved configuration: one frozen dataclass per stage."""
+
+    read: ReadConfig = field(default_factory=ReadConfig)
+    leads: LeadsConfig = field(default_factory=LeadsConfig)
+    powerline: PowerlineConfig = field(default_factory=PowerlineConfig)
+    bandpass: BandpassConfig = field(default_factory=BandpassConfig)
+    baseline: BaselineConfig = field(default_factory=BaselineConfig)
+    rpeaks: RpeaksConfig = field(default_factory=RpeaksConfig)
+    segment: SegmentConfig = field(default_factory=SegmentConfig)
+    resample: ResampleConfig = field(default_factory=ResampleConfig)
+    normalize: NormalizeConfig = field(default_factory=NormalizeConfig)
+    quality: QualityConfig = field(default_factory=QualityConfig)
+
+    # ---- construction -------------------------------------------------------------------
+    @classmethod
+    def from_dict(cls, data: dict[str, Any], *, origin: str = "config") -> "Config":
+        """Build and validate a config from nested dicts; unknown keys and bad values are errors."""
+        problems: list[str] = []
+        sections = {}
+        for key in data:
+            if key not in SECTIONS:
+                problems.append(f"{origin}: unknown section [{key}]; known sections: "
+                                f"{', '.join(SECTIONS)}")
+        for name, klass in SECTIONS.items():
+            given = data.get(name, {})
+            if not isinstance(given, dict):
+                problems.append(f"{origin}: [{name}] must be a table, got {type(given).__name__}")
+                given = {}
+            known = {f.name: f for f in fields(klass)}
+            kwargs = {}
+            for k, v in given.items():
+                if k not in known:
+                    problems.append(f"{origin}: unknown key '{k}' in [{name}]; known keys: "
+                                    f"{', '.join(known)}")
+                    continue
+                if (isinstance(v, int) and not isinstance(v, bool)
+                        and type(_default(known[k])) is float):
+                    v = float(v)  # 35 and 35.0 are the same setting and hash the same
+                kwargs[k] = v
+            sections[name] = klass(**kwargs)
+        cfg = cls(**sections)
+        problems += cfg.problems(origin=origin)
+        if problems:
+            raise ConfigError(problems)
+        return cfg
+
+    @classmethod
+    def from_toml(cls, path: str | Path) -> "Config":
+        """Read a TOML file (standard-library ``tomllib``) and validate it."""
+        path = Path(path)
+        try:
+            data = tomllib.loads(path.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise ConfigError(f"config file {path} does not exist; write one with "
+                              f"'beatmill config > {path.name}'") from None
+        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+            raise ConfigError(f"config file {path} is not valid TOML ({exc}); compare with "
+                              "'beatmill config'") from None
+        return cls.from_dict(data, origin=f"config file {path}")
+
+    def replace(self, **changes: dict[str, Any]) -> "Config":
+        """Return a validated copy with some keys of some sections changed.
+
+        ``cfg.replace(bandpass={"high_hz": 35.0})``
+        """
+        data = self.to_dict()
+        for section, values in changes.items():
+            if section not in SECTIONS:
+                raise ConfigError(f"unknown section '{section}'; known sections: {', '.join(SECTIONS)}")
+            if not isinstance(values, dict):
+                raise ConfigError(f"replace({section}=...) takes a dict of keys to change")
+            data[section] = {**data[section], **values}
+        return Config.from_dict(data, origin="Config.replace")
+
+    # ---- validation ---------------------------------------------------------------------
+    def problems(self, *, origin: str = "config") -> list[str]:
+        """Every rule broken by this config, as messages (empty when valid)."""
+        out: list[str] = []
+        for name in SECTIONS:
+            section = getattr(self, name)
+            for f in fields(section):
+                out += _check_field(origin, name, f, getattr(section, f.name))
+        if not out:
+            b = self.bandpass
+            if b.low_hz >= b.high_hz:
+                out.append(f"{origin}: [bandpass] low_hz must be below high_hz; got low_hz="
+                           f"{b.low_hz}, high_hz={b.high_hz}")
+            if self.baseline.first_window_ms >= self.baseline.second_window_ms:
+                out.append(f"{origin}: [baseline] first_window_ms must be shorter than "
+                           f"second_window_ms; got {self.baseline.first_window_ms} and "
+                           f"{self.baseline.second_window_ms}")
+            if self.quality.template_beats % 2 == 0:
+                out.append(f"{origin}: [quality] template_beats must be odd; got "
+                           f"{self.quality.template_beats}; use {self.quality.template_beats + 1}")
+            if self.quality.exclude_template_corr > self.quality.flag_template_corr:
+                out.append(f"{origin}: [quality] exclude_template_corr must not exceed "
+                           f"flag_template_corr; got {self.quality.exclude_template_corr} > "
+                           f"{self.quality.flag_template_corr}")
+            if len(set(self.powerline.candidates_hz)) == 0:
+                out.append(f"{origin}: [powerline] candidates_hz must list at least one frequency")
+        return out
+
+    def validate(self) -> "Config":
+        problems = self.problems()
+        if problems:
+            raise ConfigError(problems)
+        return self
+
+    # ---- export -------------------------------------------------------------------------
+    def to_dict(self) -> dict[str, dict[str, Any]]:
+        return {name: dataclasses.asdict(getattr(self, name)) for name in SECTIONS}
+
+    def sha256(self) -> str:
+        """Hash of everything that changes outputs (the whole config; workers are not part of it)."""
+        blob = json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(blob.encode()).hexdigest()
+
+    def to_toml(self, *, comments: bool = True) -> str:
+        """The config as TOML; with ``comments`` each key carries its meaning and source."""
+        lines = ["# beatmill configuration. Every key is optional; unknown keys are errors.",
+                 "# Each default names its source. Print this file with 'beatmill config'.", ""]
+        for name, klass in SECTIONS.items():
+            section = getattr(self, name)
+            lines.append(f"[{name}]")
+            for f in fields(klass):
+                if comments:
+                    lines.append(f"# {f.metadata['doc']}")
+                    allowed = f.metadata.get("choices")
+                    if allowed:
+                        lines.append(f"# allowed: {', '.join(allowed)}")
+                    lines.append(f"# default source: {f.metadata['source']}")
+                lines.append(f"{f.name} = {_toml_value(getattr(section, f.name))}")
+            lines.append("")
+        return "\n".join(lines)
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, str):
+        return json.dumps(v)
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise TypeError(f"cannot write {v!r} as TOML")
+
+
+def _default(f: dataclasses.Field) -> Any:
+    return f.default if f.default is not dataclasses.MISSING else f.default_factory()
+
+
+def _check_field(origin: str, section: str, f: dataclasses.Field, value: Any) -> list[str]:
+    where = f"{origin}: The '{f.name}' parameter of [{section}]"
+    meta = f.metadata
+    kind = type(_default(f))
+    if kind is bool:
+        if not isinstance(value, bool):
+            return [f"{where} must be true or false. Got {value!r} instead."]
+        return []
+    if kind is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            return [f"{where} must be a whole number. Got {value!r} instead."]
+    elif kind is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            return [f"{where} must be a finite number. Got {value!r} instead."]
+    elif kind is str:
+        if not isinstance(value, str):
+            return [f"{where} must be a string. Got {value!r} instead."]
+        if meta.get("choices") and value not in meta["choices"]:
+            return [f"{where} must be one of {', '.join(repr(c) for c in meta['choices'])}. "
+                    f"Got {value!r} instead."]
+        return []
+    elif kind is list:
+        if not isinstance(value, list):
+            return [f"{where} must be a list. Got {value!r} instead."]
+        if f.name == "candidates_hz":
+            bad = [v for v in value if isinstance(v, bool) or not isinstance(v, (int, float))
+                   or not 1.0 <= v <= 1000.0]
+            if bad:
+                return [f"{where} must list frequencies between 1 and 1000 Hz. Got {bad!r}."]
+        if f.name == "select":
+            bad = [v for v in value if not isinstance(v, str) or not v.strip()]
+            if bad or len({v.strip().lower() for v in value if isinstance(v, str)}) != len(value):
+                return [f"{where} must list distinct lead names. Got {value!r} instead."]
+        return []
+    lo, hi = meta.get("lo"), meta.get("hi")
+    if lo is not None and (value < lo or (meta.get("lo_open") and value == lo)):
+        op = ">" if meta.get("lo_open") else ">="
+        return [f"{where} must be {op} {lo}. Got {value!r} instead."]
+    if hi is not None and value > hi:
+        return [f"{where} must be <= {hi}. Got {value!r} instead."]
+    return []

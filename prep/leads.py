@@ -1,0 +1,86 @@
+"""Lead names: canonical names and aliases, ECG or not, and the dataset's lead axis."""
+from __future__ import annotations
+
+import re
+
+STANDARD_12 = ["I", "II", "III", "aVR", "aVL", "aVF", "V1", "V2", "V3", "V4", "V5", "V6"]
+
+# Aliases seen in open databases and device exports; matched case-insensitively after removing
+# spaces, dashes and underscores. MLx = modified limb lead x (Holter), Dx = European limb names.
+_ALIASES = {s.lower(): s for s in STANDARD_12}
+_ALIASES.update({"mli": "I", "mlii": "II", "mliii": "III", "ml1": "I", "ml2": "II", "ml3": "III",
+                 "di": "I", "dii": "II", "diii": "III", "d1": "I", "d2": "II", "d3": "III",
+                 "lead1": "I", "lead2": "II", "lead3": "III", "leadi": "I", "leadii": "II",
+                 "leadiii": "III", "1": "I", "2": "II", "3": "III"})
+
+# Channels that are not ECG, by name (checked on the lowered, squeezed name).
+_NON_ECG = re.compile(r"^(abp|art|pap|cvp|icp|lap|rap|uap|ap|bp|nbp|nibp|sbp|dbp|mbp|pleth|ppg|"
+                      r"spo2|sao2|so2|resp|rr|co2|etco2|awrr|temp|flow|pres.*|press.*|eeg.*|"
+                      r"emg.*|eog.*|noise.*|pulse|hr|edr|status|marker|event|annotations?|"
+                      r"thor.*|abd.*|chest|airflow|snore|position|light|acc.*|gyro.*|"
+                      r"edf annotations)$")
+_VOLT_UNITS = {"mv", "uv", "µv", "μv", "v", "nv", ""}
+_SCALE_TO_MV = {"mv": 1.0, "uv": 1e-3, "µv": 1e-3, "μv": 1e-3, "v": 1e3, "nv": 1e-6, "": 1.0}
+
+
+def _squeeze(name: str) -> str:
+    return re.sub(r"[\s_\-]+", "", name.strip().lower())
+
+
+def canonical_lead(name: str) -> str:
+    """Canonical lead name: the standard 12 (and MLII, DII... aliases) mapped, others stripped.
+
+    >>> canonical_lead("MLII"), canonical_lead("avl"), canonical_lead("V5"), canonical_lead("ECG1")
+    ('II', 'aVL', 'V5', 'ECG1')
+    """
+    key = _squeeze(name)
+    if key.startswith("ecg") and key[3:] in _ALIASES and not key[3:].isdigit():
+        key = key[3:]  # "ECG II" -> II; "ECG1" stays a plain channel name
+    return _ALIASES.get(key, name.strip())
+
+
+def classify_channel(name: str, units: str) -> tuple[bool, str]:
+    """Whether a channel is ECG, and if not, why (for the record's skipped list)."""
+    key = _squeeze(name)
+    u = (units or "").strip().lower()
+    if _NON_ECG.match(key):
+        return False, f"channel '{name}' is not ECG by its name"
+    if u not in _VOLT_UNITS:
+        return False, f"channel '{name}' is not ECG: units '{units}' are not a voltage"
+    return True, ""
+
+
+def scale_to_mv(units: str) -> float:
+    return _SCALE_TO_MV.get((units or "").strip().lower(), 1.0)
+
+
+def default_axis(record_leads: list[list[str]]) -> list[str]:
+    """The lead axis when the user chooses none: the canonical ECG leads every record shares.
+
+    Order: the standard twelve in their order (I, II, III, aVR, aVL, aVF, V1-V6), then the rest by
+    name. When every record has all standard twelve, only those twelve (extra leads such as the
+    Frank leads need ``--leads``).
+    """
+    if not record_leads:
+        return []
+    shared = set(record_leads[0])
+    for leads in record_leads[1:]:
+        shared &= set(leads)
+    if set(STANDARD_12) <= shared:
+        return list(STANDARD_12)
+    std = [s for s in STANDARD_12 if s in shared]
+    rest = sorted((s for s in shared if s not in STANDARD_12), key=str.lower)
+    return std + rest
+
+
+def resolve_axis(select: list[str]) -> list[str]:
+    return [canonical_lead(s) for s in select]
+
+
+def match_lead(axis_name: str, record_leads: list[str]) -> int | None:
+    """Index of ``axis_name`` among a record's canonical leads, case-insensitive; None if absent."""
+    key = axis_name.lower()
+    for i, lead in enumerate(record_leads):
+        if lead.lower() == key:
+            return i
+    return None
