@@ -247,6 +247,19 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     if others:
         trusted[:, others] = good[:, others] & ~good[:, [primary]]
     accepted = (2 * n_sup > n_leads) | (support & trusted).any(1)
+    # two accepted beats closer than the refractory period are one beat seen at two places
+    # (leads disagree on where R is): keep the better supported one, then the primary's
+    dist = int(round(cfg.min_rr_ms * fs / 1000))
+    for _ in range(3):
+        ai = np.flatnonzero(accepted)
+        close = np.flatnonzero(np.diff(r[ai]) < dist)
+        if close.size == 0:
+            break
+        a_, b_ = ai[close], ai[close + 1]
+        wa = n_sup[a_] * 2 + support[a_, primary]
+        wb = n_sup[b_] * 2 + support[b_, primary]
+        drop = np.where(wa > wb, b_, np.where(wb > wa, a_, np.where(best[a_] >= best[b_], b_, a_)))
+        accepted[drop] = False
     return Fused(r.astype(np.int64), support, best, accepted, r_lead.astype(np.int64))
 
 
