@@ -11,6 +11,7 @@ import numpy as np
 from scipy import signal
 
 from ._checks import as_signal
+from ._design import warped_corner
 from .config import BandpassConfig
 from .model import StageLog
 
@@ -41,19 +42,6 @@ class BandpassDesign:
                 "adapted": self.adapted}
 
 
-def _corner_shift(order: int) -> float:
-    # single pass loses 1.5 dB at f: 1 + (fc/f)^(2N) = 10^0.15  ->  fc = f * (10^0.15 - 1)^(1/2N)
-    return (10 ** 0.15 - 1) ** (1 / (2 * order))
-
-
-def _warped_corner(f: float, fs: float, order: int, *, up: bool) -> float:
-    # the digital Butterworth response depends on tan(pi f / fs) (bilinear transform), so the
-    # corner shift is applied in that warped axis; up=True for the high-pass corner.
-    k = _corner_shift(order)
-    w = np.tan(np.pi * f / fs)
-    return float(np.arctan(w * k if up else w / k) * fs / np.pi)
-
-
 def design_bandpass(fs: float, low_hz: float, high_hz: float, order: int = 2) -> BandpassDesign:
     """Design the band-pass; the upper edge is lowered to 0.45 x fs when Nyquist is too low.
 
@@ -71,7 +59,7 @@ def design_bandpass(fs: float, low_hz: float, high_hz: float, order: int = 2) ->
     if high_hz <= low_hz:
         raise ValueError(f"band-pass edges must satisfy low_hz < high_hz < Nyquist (fs={fs:g}); "
                          f"got low_hz={low_hz:g}, high_hz={high_hz:g}")
-    hp, lp = _warped_corner(low_hz, fs, order, up=True), _warped_corner(high_hz, fs, order, up=False)
+    hp, lp = warped_corner(low_hz, fs, order, up=True), warped_corner(high_hz, fs, order, up=False)
     sos = np.concatenate([signal.butter(order, hp, "highpass", fs=fs, output="sos"),
                           signal.butter(order, lp, "lowpass", fs=fs, output="sos")])
     return BandpassDesign(float(low_hz), float(high_hz), int(order), float(fs), sos, hp, lp, adapted)

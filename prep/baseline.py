@@ -5,7 +5,7 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ._checks import as_signal
-from .bandpass import _warped_corner
+from ._design import warped_corner
 from .config import BaselineConfig
 from .model import StageLog
 
@@ -43,7 +43,7 @@ def remove_baseline(x, fs: float, cfg: BaselineConfig = BaselineConfig()):
         log.params.update(first_window_ms=cfg.first_window_ms, second_window_ms=cfg.second_window_ms)
         log.derived.update(first_window_samples=w1, second_window_samples=w2)
         return x - median_baseline(x, fs, cfg.first_window_ms, cfg.second_window_ms), log
-    corner = _warped_corner(cfg.highpass_hz, fs, 2, up=True)
+    corner = warped_corner(cfg.highpass_hz, fs, 2, up=True)
     sos = signal.butter(2, corner, "highpass", fs=fs, output="sos")
     padlen = min(x.shape[-1] - 1, int(round(3 * fs / cfg.highpass_hz)))
     log.params["highpass_hz"] = cfg.highpass_hz

@@ -48,7 +48,7 @@ def line_peak_db(x: np.ndarray, fs: float, freqs: list[float]) -> dict[float, fl
         if peak.size == 0 or near.size == 0:
             out[f0] = float("-inf")
             continue
-        out[f0] = float(10 * np.log10(peak.max() / max(np.median(near), 1e-30)))
+        out[f0] = float(10 * np.log10(max(peak.max(), 1e-30) / max(np.median(near), 1e-30)))
     return out
 
 

@@ -6,8 +6,8 @@ from __future__ import annotations
 
 REASONS: dict[str, tuple[str, str]] = {
     # code: (stage that sets it, explanation)
-    "one_lead_only": ("rpeaks", "seen in a minority of leads, none of them locally trustworthy "
-                                "(template quality below rpeaks.min_lead_template_corr)"),
+    "one_lead_only": ("rpeaks", "seen by a minority of the used leads, none of them locally "
+                                "trusted at that time (docs/rpeaks.md, fusion)"),
     "off_edge": ("segment", "the beat window runs past the start or end of the record"),
     "in_gap": ("segment", "the beat window overlaps missing samples (a gap)"),
     "no_rr": ("segment", "mode 'rr' needs both neighbouring beats, and one is missing"),

@@ -1,0 +1,90 @@
+"""Verify a finished dataset folder: files match the manifest, tensors and tables agree."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .export import MANIFEST, TABLE_FILES, TENSOR_FILES, sha256_path
+from .pipeline import BEAT_COLUMNS
+
+
+def check_dataset(run_dir: str | Path) -> list[str]:
+    """Every problem found in ``run_dir`` (empty list when the dataset is sound)."""
+    import pandas as pd
+
+    d = Path(run_dir)
+    problems: list[str] = []
+    mpath = d / MANIFEST
+    if not mpath.exists():
+        return [f"{mpath}: missing; is {d} a beatmill dataset folder?"]
+    try:
+        manifest = json.loads(mpath.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        return [f"{mpath}: not valid JSON ({exc})"]
+    files = manifest.get("files", {})
+    for f in TENSOR_FILES + TABLE_FILES:
+        p = d / f
+        if not p.exists():
+            problems.append(f"{p}: missing")
+        elif f not in files:
+            problems.append(f"{p}: not listed in the manifest")
+        elif sha256_path(p) != files[f]:
+            problems.append(f"{p}: SHA-256 differs from the manifest (file changed or corrupted)")
+    if problems:
+        return problems
+    try:
+        beats = np.load(d / "beats.npy", mmap_mode="r")
+        mask = np.load(d / "lead_mask.npy", mmap_mode="r")
+        center = np.load(d / "norm_center.npy", mmap_mode="r")
+        scale = np.load(d / "norm_scale.npy", mmap_mode="r")
+        table = pd.read_parquet(d / "beats.parquet")
+        records = pd.read_parquet(d / "records.parquet")
+    except Exception as exc:
+        return [f"{d}: cannot load the dataset files ({type(exc).__name__}: {exc})"]
+    axis = manifest.get("lead_axis", [])
+    n = beats.shape[0] if beats.ndim == 3 else -1
+    if beats.ndim != 3 or beats.dtype != np.float32 or not beats.flags.c_contiguous:
+        problems.append(f"beats.npy: expected C-order float32 of 3 dimensions, got {beats.dtype} "
+                        f"shape {beats.shape}")
+    if list(beats.shape) != manifest.get("tensor", {}).get("shape"):
+        problems.append(f"beats.npy: shape {list(beats.shape)} differs from the manifest's "
+                        f"{manifest.get('tensor', {}).get('shape')}")
+    if beats.ndim == 3 and beats.shape[1] != len(axis):
+        problems.append(f"beats.npy: {beats.shape[1]} leads but the lead axis names {len(axis)}")
+    for name, arr, dt in (("lead_mask.npy", mask, np.bool_), ("norm_center.npy", center, np.float32),
+                          ("norm_scale.npy", scale, np.float32)):
+        if arr.shape != (n, len(axis)) or arr.dtype != dt:
+            problems.append(f"{name}: expected shape ({n}, {len(axis)}) {np.dtype(dt)}, got "
+                            f"{arr.shape} {arr.dtype}")
+    missing = [c for c in BEAT_COLUMNS if c not in table.columns]
+    if missing:
+        problems.append(f"beats.parquet: missing columns {missing}")
+        return problems
+    inc = table["included"].to_numpy(bool)
+    ti = table["tensor_index"].to_numpy()
+    if int(inc.sum()) != n:
+        problems.append(f"beats.parquet: {int(inc.sum())} included rows but beats.npy has {n} beats")
+    if not np.array_equal(np.sort(ti[inc]), np.arange(inc.sum())):
+        problems.append("beats.parquet: tensor_index of included rows is not 0..n-1, each once")
+    if (ti[~inc] != -1).any():
+        problems.append("beats.parquet: excluded rows must have tensor_index -1")
+    reasons = table["reasons"].fillna("").astype(str)
+    if (reasons[inc] != "").any():
+        problems.append("beats.parquet: included rows must have no reasons")
+    if (reasons[~inc] == "").any():
+        problems.append("beats.parquet: every excluded row needs at least one reason")
+    if table["beat_id"].duplicated().any():
+        problems.append("beats.parquet: beat_id is not unique")
+    ids = table["record"].astype(str) + ":" + table["r_sample"].astype(str)
+    if not (ids == table["beat_id"]).all():
+        problems.append("beats.parquet: beat_id must be record:r_sample")
+    if int(records["n_kept"].sum()) != n:
+        problems.append(f"records.parquet: n_kept adds up to {int(records['n_kept'].sum())}, "
+                        f"beats.npy has {n}")
+    if not set(table["record"]).issubset(set(records["record"])):
+        problems.append("beats.parquet: names records that records.parquet does not list")
+    if n > 0 and not np.isfinite(np.asarray(beats[: min(n, 100000)])).all():
+        problems.append("beats.npy: holds non-finite values")
+    return problems

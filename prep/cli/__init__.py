@@ -1,0 +1,1 @@
+"""Command-line interface (``beatmill``). Heavy imports live inside the commands."""

@@ -1,0 +1,197 @@
+"""``beatmill``: the command-line door to the pipeline.
+
+Diagnostics and progress go to stderr, results to stdout. Exit codes (README, "Exit codes"):
+0 all records ok; 1 some records failed but a dataset was written; 2 usage or configuration error;
+3 no record could be used.
+"""
+from __future__ import annotations
+
+import logging
+import os
+import sys
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+
+app = typer.Typer(add_completion=False, no_args_is_help=True,
+                  context_settings={"help_option_names": ["-h", "--help"]},
+                  help="Turn raw ECG records into clean, fixed-length, normalized beat tensors "
+                       "with a provenance manifest.\n\nExample:\n\n"
+                       "  beatmill run demo_records --out runs/demo\n\n"
+                       "Research use only: not a medical device, not for diagnosis.")
+
+log = logging.getLogger("prep")
+
+
+def _setup_logging(verbose: int, quiet: bool) -> None:
+    level = logging.ERROR if quiet else logging.DEBUG if verbose > 1 else \
+        logging.INFO if verbose == 1 else logging.WARNING
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("beatmill: %(message)s"))
+    log.handlers[:] = [handler]
+    log.setLevel(level)
+
+
+def _fail(msg: str, code: int = 2) -> None:
+    typer.echo(f"beatmill: error: {msg}", err=True)
+    raise typer.Exit(code)
+
+
+@app.command()
+def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record base names, CSV "
+                                           "files or folders to search."),
+        out: Path = typer.Option(..., "--out", "-o", help="Dataset folder to write."),
+        config: Optional[Path] = typer.Option(None, "--config", "-c",
+                                              help="TOML configuration (see 'beatmill config')."),
+        leads: Optional[str] = typer.Option(None, "--leads", help="Lead axis, comma-separated, "
+                                            "e.g. MLII,V5 (aliases understood)."),
+        fs: Optional[float] = typer.Option(None, "--fs", help="Sampling rate of CSV inputs in Hz."),
+        overwrite: bool = typer.Option(False, "--overwrite",
+                                       help="Replace an existing dataset folder."),
+        verbose: int = typer.Option(0, "--verbose", "-v", count=True, help="More messages."),
+        quiet: bool = typer.Option(False, "--quiet", "-q", help="Errors only.")) -> None:
+    """Process records and write a dataset folder.
+
+    Example:
+
+      beatmill run demo_records --out runs/demo --leads II,V5
+    """
+    _setup_logging(verbose, quiet)
+    from ..config import Config
+    from ..dataset import run as run_dataset
+    from ..errors import BeatmillError, ConfigError
+
+    try:
+        cfg = Config.from_toml(config) if config else Config()
+        if leads:
+            cfg = cfg.replace(leads={"select": [s.strip() for s in leads.split(",") if s.strip()]})
+    except ConfigError as exc:
+        _fail("\n  ".join(["configuration is invalid:"] + exc.problems))
+    progress, stop = _progress(quiet)
+    try:
+        summary = run_dataset(inputs, out, config=cfg, overwrite=overwrite, csv_fs=fs,
+                              progress=progress)
+    except ConfigError as exc:
+        stop()
+        _fail("\n  ".join(exc.problems) if len(exc.problems) > 1 else str(exc))
+    except (BeatmillError, OSError) as exc:
+        stop()
+        _fail(f"{exc}; the previous state of {out} is unchanged where nothing was renamed yet")
+    stop()
+    typer.echo(f"wrote {summary.out}: {summary.n_records} records "
+               f"({summary.n_failed} failed, {summary.n_no_lead} without a usable lead), "
+               f"{summary.n_beats} beats detected, {summary.n_kept} kept; lead axis "
+               f"{','.join(summary.axis)}")
+    raise typer.Exit(summary.exit_code)
+
+
+def _progress(quiet: bool):
+    """A Rich progress bar on an interactive stderr; otherwise nothing."""
+    if quiet or not sys.stderr.isatty() or os.environ.get("CI"):
+        return None, lambda: None
+    from rich.console import Console
+    from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
+                               TimeElapsedColumn, TimeRemainingColumn)
+
+    bar = Progress(TextColumn("records"), BarColumn(), MofNCompleteColumn(),
+                   TextColumn("{task.fields[kept]} beats kept"), TimeElapsedColumn(),
+                   TextColumn("left"), TimeRemainingColumn(),
+                   console=Console(stderr=True, no_color=bool(os.environ.get("NO_COLOR"))))
+    state = {"task": None, "kept": 0}
+    bar.start()
+
+    def update(res, done, total):
+        if state["task"] is None:
+            state["task"] = bar.add_task("run", total=total, kept=0)
+        state["kept"] += res.n_kept
+        bar.update(state["task"], completed=done, kept=state["kept"])
+
+    return update, bar.stop
+
+
+@app.command("config")
+def config_cmd(check: Optional[Path] = typer.Option(None, "--check",
+                                                    help="Validate this TOML file instead.")) -> None:
+    """Print the fully commented default configuration (TOML).
+
+    Example:
+
+      beatmill config > beatmill.toml
+    """
+    from ..config import Config
+    from ..errors import ConfigError
+
+    if check:
+        try:
+            Config.from_toml(check)
+        except ConfigError as exc:
+            _fail("\n  ".join(["configuration is invalid:"] + exc.problems))
+        typer.echo(f"{check}: valid")
+        return
+    typer.echo(Config().to_toml())
+
+
+@app.command()
+def check(run_dir: Path = typer.Argument(..., help="A dataset folder written by 'beatmill run'.")) -> None:
+    """Verify a dataset: tensors, mask and tables agree and every file matches its SHA-256.
+
+    Example:
+
+      beatmill check runs/demo
+    """
+    from ..check import check_dataset
+
+    problems = check_dataset(run_dir)
+    if problems:
+        for p in problems:
+            typer.echo(f"problem: {p}", err=True)
+        _fail(f"{run_dir}: {len(problems)} problem(s) found", code=1)
+    typer.echo(f"{run_dir}: ok")
+
+
+@app.command()
+def demo(out: Path = typer.Option(Path("demo_records"), "--out", "-o", help="Folder to write."),
+         overwrite: bool = typer.Option(False, "--overwrite", help="Replace files already there.")) -> None:
+    """Write the synthetic demo records (byte for byte the same every time).
+
+    Example:
+
+      beatmill demo --out demo_records --overwrite
+    """
+    from ..demo import write_demo
+
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        _fail(f"{out} is not empty; pass --overwrite to replace the demo records there")
+    names = write_demo(out)
+    typer.echo(f"wrote {len(names)} demo records to {out}: {', '.join(names)}")
+
+
+@app.command()
+def reasons() -> None:
+    """List every exclusion reason code and warning flag with its meaning.
+
+    Example:
+
+      beatmill reasons
+    """
+    from ..reasons import FLAGS, REASONS
+
+    typer.echo("Exclusion reasons (beats.parquet 'reasons'):")
+    for code, (stage, text) in REASONS.items():
+        typer.echo(f"  {code:<18} [{stage}] {text}")
+    typer.echo("Flags on kept beats (beats.parquet 'flags'):")
+    for code, text in FLAGS.items():
+        typer.echo(f"  {code:<18} {text}")
+
+
+def main() -> None:
+    try:
+        app()
+    except KeyboardInterrupt:
+        typer.echo("beatmill: interrupted", err=True)
+        sys.exit(130)
+
+
+if __name__ == "__main__":
+    main()
