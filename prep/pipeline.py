@@ -108,7 +108,13 @@ def process_record(rec: Record, cfg: Config, axis: list[str]) -> RecordResult:
     y, lg = remove_baseline(y, fs, cfg.baseline)
     res.logs.append(lg)
 
-    fused, lg = detect_beats(y, fs, usable, cfg.rpeaks)
+    res.logs.append(StageLog("lead_faults", params={"flat_ms": cfg.quality.flat_ms,
+                                                    "clip_run_samples": cfg.quality.clip_run_samples,
+                                                    "min_usable_fraction":
+                                                        cfg.quality.min_usable_fraction},
+                             derived={rec.leads[j]: {**fault[j], "rejected": lead_reason[j]}
+                                      for j in range(len(rec.leads))}))
+    fused, lg = detect_beats(y, fs, usable, cfg.rpeaks, names=rec.leads)
     res.logs.append(lg)
     for j in np.flatnonzero(usable):
         if fused.support[:, j].sum() == 0:

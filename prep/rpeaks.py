@@ -181,6 +181,14 @@ def window_template_quality(band: np.ndarray, peaks: np.ndarray, fs: float,
     return out
 
 
+def _primary(quality: list[np.ndarray]) -> int:
+    """Index of the lead with the best median window quality (ties: the first)."""
+    if not quality:
+        return 0
+    med = [np.nanmedian(q) if np.isfinite(q).any() else -1.0 for q in quality]
+    return int(np.argmax(med))
+
+
 @dataclass
 class Fused:
     """Beats after fusion. ``support[i, j]``: lead j saw beat i; ``accepted``: fusion kept it."""
@@ -206,9 +214,7 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
         z = np.zeros(0, np.int64)
         return Fused(z, np.zeros((0, n_leads), bool), np.zeros(0), np.zeros(0, bool), z)
     q = np.vstack(quality)  # (n_leads, n_windows)
-    score = np.nan_to_num(np.nanmedian(np.where(np.isnan(q), np.nan, q), axis=1)
-                          if np.isfinite(q).any() else np.zeros(n_leads), nan=-1.0)
-    primary = int(np.argmax(score))
+    primary = _primary(quality)
     tol = int(round(cfg.fuse_window_ms * fs / 1000))
     order = [primary] + [j for j in range(n_leads) if j != primary]
     # clusters: anchored on the primary lead, the others matched to the nearest anchor in tol
@@ -263,12 +269,14 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     return Fused(r.astype(np.int64), support, best, accepted, r_lead.astype(np.int64))
 
 
-def detect_beats(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig = RpeaksConfig()):
+def detect_beats(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig = RpeaksConfig(),
+                 names: list[str] | None = None):
     """Detect, refine and fuse beats over the usable leads of a filtered record.
 
-    ``x``: (n_leads, n_samples) filtered signal; ``usable``: bool per lead. Returns
-    (:class:`Fused` with support over all leads, StageLog).
+    ``x``: (n_leads, n_samples) filtered signal; ``usable``: bool per lead; ``names``: lead names
+    for the log (default: indices). Returns (:class:`Fused` with support over all leads, StageLog).
     """
+    names = names or [str(j) for j in range(np.shape(x)[0])]
     x = as_signal(x, fs, "detect_beats", min_samples=8)
     n_leads = x.shape[0]
     idx = np.flatnonzero(usable)
@@ -286,15 +294,17 @@ def detect_beats(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
         peaks.append(r)
         conf.append(c)
         qual.append(window_template_quality(band, r, fs))
-        pols[int(j)] = pol
-        log.counts[f"lead{int(j)}_detections"] = int(r.size)
+        pols[names[j]] = pol
+        log.counts[f"detections_{names[j]}"] = int(r.size)
     fused = fuse(peaks, conf, qual, fs, cfg)
+    fused_primary = _primary(qual)
     full = np.zeros((fused.r.size, n_leads), bool)
     full[:, idx] = fused.support
     lead_of = idx[fused.r_lead] if fused.r.size else fused.r_lead
     fused = Fused(fused.r, full, fused.confidence, fused.accepted, lead_of)
     log.derived["polarity"] = pols
-    log.derived["lead_quality_median"] = {int(j): (None if not np.isfinite(np.nanmedian(q)) else
+    log.derived["primary_lead"] = names[int(idx[fused_primary])] if idx.size else None
+    log.derived["lead_quality_median"] = {names[j]: (None if not np.isfinite(np.nanmedian(q)) else
                                                    round(float(np.nanmedian(q)), 4))
                                           for j, q in zip(idx, qual) if q.size}
     log.counts.update(fused=int(fused.r.size), accepted=int(fused.accepted.sum()),
