@@ -85,6 +85,52 @@ def check_dataset(run_dir: str | Path) -> list[str]:
                         f"beats.npy has {n}")
     if not set(table["record"]).issubset(set(records["record"])):
         problems.append("beats.parquet: names records that records.parquet does not list")
+    problems += _check_splits_and_labels(table, records, manifest, n)
     if n > 0 and not np.isfinite(np.asarray(beats[: min(n, 100000)])).all():
         problems.append("beats.npy: holds non-finite values")
     return problems
+
+
+def _check_splits_and_labels(table, records, manifest: dict, n: int) -> list[str]:
+    """No patient in two splits; split row ranges match the tensor; labels and classes valid."""
+    from .labels import beat_classes
+    from .split import SPLITS
+
+    out: list[str] = []
+    for name, t in (("beats.parquet", table), ("records.parquet", records)):
+        if "patient" not in t or "split" not in t:
+            out.append(f"{name}: missing patient/split columns")
+            return out
+        sub = t[t["split"] != ""]
+        per = sub.groupby("patient")["split"].nunique()
+        leak = sorted(per[per > 1].index)
+        if leak:
+            out.append(f"{name}: patients in more than one split: {leak[:10]}")
+        bad = sorted(set(sub["split"]) - set(SPLITS))
+        if bad:
+            out.append(f"{name}: unknown split names {bad}")
+    ranges = {k: v.get("rows") for k, v in manifest.get("splits", {}).items()}
+    kept = table[table["included"]].sort_values("tensor_index")
+    splits = kept["split"].to_numpy()
+    for sname in SPLITS:
+        a, b = ranges.get(sname) or [0, 0]
+        idx = np.flatnonzero(splits == sname)
+        want = [int(idx[0]), int(idx[-1]) + 1] if idx.size else [0, 0]
+        if [a, b] != want or (idx.size and idx.size != b - a):
+            out.append(f"manifest.json: split '{sname}' rows {[a, b]} do not match the tensor "
+                       f"rows of that split {want}")
+    if n and sum((v or [0, 0])[1] - (v or [0, 0])[0] for v in ranges.values()) != n:
+        out.append("manifest.json: split row ranges do not cover every tensor row")
+    table_classes = manifest.get("labels", {}).get("classes")
+    if table_classes is not None and "class" in table:
+        want = beat_classes(table["label"].fillna("").astype(str).to_numpy(), table_classes)
+        if not (want == table["class"].to_numpy()).all():
+            out.append("beats.parquet: class does not follow label through the manifest's table")
+        tc = set(manifest.get("labels", {}).get("train_classes", []))
+        if tc:
+            tr = table[table["included"] & (table["split"] == "train")]
+            off = sorted(set(tr["class"]) - tc)
+            if off:
+                out.append(f"beats.parquet: training split holds classes {off} outside "
+                           f"train_classes {sorted(tc)}")
+    return out

@@ -42,9 +42,6 @@ class ReadConfig:
     annotation_extension: str = _f("atr", "WFDB annotation file extension read as the reference "
                                    "beat labels (record.EXT). Missing file: no labels.",
                                    "WFDB convention: .atr holds reference annotations")
-    label_window_ms: float = _f(150.0, "A reference annotation labels a beat when it lies within "
-                                "this many ms of the beat's R.",
-                                "AAMI EC57 beat-matching window (150 ms)", lo=1.0, hi=1000.0)
 
 
 @dataclass(frozen=True)
@@ -190,11 +187,51 @@ class QualityConfig:
                                     "common practice, no source", lo=0.0, hi=1.0)
 
 
+@dataclass(frozen=True)
+class LabelsConfig:
+    window_ms: float = _f(150.0, "A reference beat annotation labels a beat when it lies within "
+                          "this many ms of the beat's R (the nearest one wins).",
+                          "AAMI EC57 beat-matching window (150 ms)", lo=1.0, hi=1000.0)
+    mapping_file: str = _f("", "Extra symbol -> class table: a TOML file with a [classes] table "
+                           "(\"symbol\" = \"class\") or a CSV with columns symbol,class. Its entries "
+                           "override the AAMI EC57 table; its contents are part of the config hash.",
+                           "design choice")
+    train_classes: list = _f(None, "Classes kept in the training split (e.g. [\"N\"]); beats of "
+                             "training patients in other classes are excluded (not_train_class). "
+                             "Empty: every class. 'unlabeled' names beats without a reference label.",
+                             "design choice", factory=list)
+    exclude_annotated_noise: bool = _f(True, "Exclude beats inside stretches the annotator marked "
+                                       "as noisy or unreadable in a used lead (annotated_noise).",
+                                       "design choice")
+
+
+@dataclass(frozen=True)
+class SplitConfig:
+    patient_map: str = _f("", "CSV with columns record,patient. Records not in it fall back to "
+                          "patient_pattern, then to their own name. Contents are part of the hash.",
+                          "design choice")
+    patient_pattern: str = _f("", "Regular expression with one group, searched in the header "
+                              "comments, that gives the patient (e.g. \"patient[: ]+(\\\\w+)\"). "
+                              "Empty: not used.", "design choice")
+    ratios: list = _f(None, "Train, validation, test shares of kept beats, met as closely as whole "
+                      "patients allow.", "common practice, no source",
+                      factory=lambda: [0.7, 0.15, 0.15])
+    seed: int = _f(0, "Seed of the patient assignment (same seed, same split).", "design choice",
+                   lo=0, hi=2**32 - 1)
+    train_patients: list = _f(None, "Fixed training patients. When any fixed list is given, "
+                              "patients in none of them are excluded (not_in_split_lists).",
+                              "design choice (reproducing a published split)", factory=list)
+    val_patients: list = _f(None, "Fixed validation patients (see train_patients).",
+                            "design choice", factory=list)
+    test_patients: list = _f(None, "Fixed test patients (see train_patients).", "design choice",
+                             factory=list)
+
+
 SECTIONS: dict[str, type] = {
     "read": ReadConfig, "leads": LeadsConfig, "powerline": PowerlineConfig,
     "bandpass": BandpassConfig, "baseline": BaselineConfig, "rpeaks": RpeaksConfig,
     "segment": SegmentConfig, "resample": ResampleConfig, "normalize": NormalizeConfig,
-    "quality": QualityConfig,
+    "quality": QualityConfig, "labels": LabelsConfig, "split": SplitConfig,
 }
 
 
@@ -212,6 +249,8 @@ class Config:
     resample: ResampleConfig = field(default_factory=ResampleConfig)
     normalize: NormalizeConfig = field(default_factory=NormalizeConfig)
     quality: QualityConfig = field(default_factory=QualityConfig)
+    labels: LabelsConfig = field(default_factory=LabelsConfig)
+    split: SplitConfig = field(default_factory=SplitConfig)
 
     # ---- construction -------------------------------------------------------------------
     @classmethod
@@ -298,6 +337,23 @@ class Config:
                 out.append(f"{origin}: [quality] exclude_template_corr must not exceed "
                            f"flag_template_corr; got {self.quality.exclude_template_corr} > "
                            f"{self.quality.flag_template_corr}")
+            sp = self.split
+            lists = [set(sp.train_patients), set(sp.val_patients), set(sp.test_patients)]
+            for i, j, a, b in ((0, 1, "train", "val"), (0, 2, "train", "test"),
+                               (1, 2, "val", "test")):
+                both = sorted(lists[i] & lists[j])
+                if both:
+                    out.append(f"{origin}: [split] patients {both} are in both {a}_patients and "
+                               f"{b}_patients; a patient belongs to one split")
+            if sp.patient_pattern:
+                import re
+                try:
+                    if re.compile(sp.patient_pattern).groups != 1:
+                        out.append(f"{origin}: [split] patient_pattern must have exactly one "
+                                   f"group; got {sp.patient_pattern!r}")
+                except re.error as exc:
+                    out.append(f"{origin}: [split] patient_pattern is not a valid regular "
+                               f"expression ({exc})")
             if len(set(self.powerline.candidates_hz)) == 0:
                 out.append(f"{origin}: [powerline] candidates_hz must list at least one frequency")
         return out
@@ -312,9 +368,11 @@ class Config:
     def to_dict(self) -> dict[str, dict[str, Any]]:
         return {name: dataclasses.asdict(getattr(self, name)) for name in SECTIONS}
 
-    def sha256(self) -> str:
-        """Hash of everything that changes outputs (the whole config; workers are not part of it)."""
-        blob = json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":"))
+    def sha256(self, extra: dict[str, Any] | None = None) -> str:
+        """Hash of everything that changes outputs: the whole config plus ``extra`` (the contents
+        of files it names, such as the patient map). Workers and paths of outputs are not part."""
+        blob = json.dumps({"config": self.to_dict(), "extra": extra or {}}, sort_keys=True,
+                          separators=(",", ":"))
         return hashlib.sha256(blob.encode()).hexdigest()
 
     def to_toml(self, *, comments: bool = True) -> str:
@@ -381,6 +439,16 @@ def _check_field(origin: str, section: str, f: dataclasses.Field, value: Any) ->
                    or not 1.0 <= v <= 1000.0]
             if bad:
                 return [f"{where} must list frequencies between 1 and 1000 Hz. Got {bad!r}."]
+        if f.name == "ratios":
+            if len(value) != 3 or any(isinstance(v, bool) or not isinstance(v, (int, float))
+                                      or v < 0 for v in value) or sum(value) <= 0:
+                return [f"{where} must be three non-negative shares with a positive sum. "
+                        f"Got {value!r} instead."]
+            return []
+        if f.name in ("train_classes", "train_patients", "val_patients", "test_patients"):
+            if any(not isinstance(v, str) or not v.strip() for v in value):
+                return [f"{where} must list non-empty names. Got {value!r} instead."]
+            return []
         if f.name == "select":
             bad = [v for v in value if not isinstance(v, str) or not v.strip()]
             if bad or len({v.strip().lower() for v in value if isinstance(v, str)}) != len(value):

@@ -16,7 +16,11 @@ from .errors import BeatmillError, ConfigError
 from .export import (MANIFEST, TABLE_FILES, TENSOR_FILES, environment, sha256_path, write_manifest,
                      write_npy, write_parquet)
 from .leads import default_axis, resolve_axis
-from .pipeline import RecordResult, _empty_beats, normalize_results, safe_process
+from . import reasons as reasons_mod
+from .labels import AAMI_CLASSES, UNLABELED, load_mapping
+from .normalize import apply_stats, fit_per_lead, normalize
+from .pipeline import BEAT_COLUMNS, RecordResult, _empty_beats, safe_process
+from .split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
 from .read import Source, find_sources, read_source
 
 log = logging.getLogger("prep")
@@ -35,6 +39,7 @@ class RunSummary:
     n_kept: int
     axis: list[str]
     exit_code: int
+    splits: dict | None = None
 
 
 def _peek_leads(src: Source, cfg: Config) -> list[str] | None:
@@ -69,6 +74,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
     if csv_fs:
         cfg = cfg.replace(read={"csv_fs_hz": float(csv_fs)})
     out = Path(out)
+    mapping, pmap, extra = _resolve_extras(cfg)
     found, problems = find_sources(list(sources))
     if not found:
         raise ConfigError(problems or ["no input records given"])
@@ -86,13 +92,13 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
                               "(for example --leads II)")
     results: list[RecordResult] = []
     for i, src in enumerate(found):
-        res = safe_process(lambda s=src: read_source(s, cfg.read), src.name, cfg, axis)
+        res = safe_process(lambda s=src: read_source(s, cfg.read), src.name, cfg, axis, mapping)
         if res.status == "failed":
             log.warning("%s: %s", src.name, res.error)
         results.append(res)
         if progress:
             progress(res, i + 1, len(found))
-    return _write(out, results, cfg, axis, [str(s) for s in sources], found)
+    return _write(out, results, cfg, axis, [str(s) for s in sources], found, mapping, pmap, extra)
 
 
 def _prepare_out(out: Path, overwrite: bool) -> None:
@@ -109,45 +115,102 @@ def _prepare_out(out: Path, overwrite: bool) -> None:
     out.mkdir(parents=True, exist_ok=True)
 
 
+def _resolve_extras(cfg: Config) -> tuple[dict, dict, dict]:
+    """Files the config names, read now: symbol map, patient map, and their hash contribution."""
+    mapping = load_mapping(cfg.labels.mapping_file)
+    pmap = load_patient_map(cfg.split.patient_map)
+    return mapping, pmap, {"labels.mapping": mapping, "split.patient_map": pmap}
+
+
 def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
-           given: list[str], found: list[Source]) -> RunSummary:
+           given: list[str], found: list[Source], mapping: dict, pmap: dict,
+           extra: dict) -> RunSummary:
     n_ax, n_s = len(axis), cfg.resample.n_samples
     for r in results:  # failed records contribute empty arrays of the right shape
         if r.tensor is None:
             r.tensor = np.zeros((0, n_ax, n_s))
             r.mask = np.zeros((0, n_ax), bool)
             r.beats = _empty_beats()
-    normed = normalize_results(results, cfg)
-    offset = 0
+
+    # ---- patients and splits ------------------------------------------------------------
+    patients = [patient_of(r.name, r.comments, pmap, cfg.split.patient_pattern) for r in results]
+    sp = cfg.split
+    fixed = bool(sp.train_patients or sp.val_patients or sp.test_patients)
+    if fixed:
+        split_of = fixed_assignment(sorted(set(patients)), sp.train_patients, sp.val_patients,
+                                    sp.test_patients)
+    else:
+        counts: dict[str, dict[str, int]] = {}
+        for r, p in zip(results, patients):
+            c = counts.setdefault(p, {})
+            kept = r.beats[r.beats["included"]]
+            for k, v in kept["class"].value_counts().items():
+                c[str(k)] = c.get(str(k), 0) + int(v)
+        split_of = assign_patients(counts, sp.ratios, sp.seed)
+    train_classes = set(cfg.labels.train_classes)
     frames = []
-    for r in results:
+    for k, (r, p) in enumerate(zip(results, patients)):
         b = r.beats.copy()
-        b["tensor_index"] = np.where(b["tensor_index"] >= 0, b["tensor_index"] + offset, -1)
+        split = split_of.get(p, "")
+        b["patient"] = p
+        b["split"] = split
+        b["_rec"] = k
+        b["_local"] = b["tensor_index"]
+        extra_reason = np.full(len(b), "", dtype=object)
+        if fixed and not split:
+            extra_reason[b["included"].to_numpy()] = "not_in_split_lists"
+        elif split == "train" and train_classes:
+            off = b["included"].to_numpy() & ~b["class"].isin(train_classes).to_numpy()
+            extra_reason[off] = "not_train_class"
+        hit = extra_reason != ""
+        if hit.any():
+            b.loc[hit, "reasons"] = [reasons_mod.join([c]) for c in extra_reason[hit]]
+            b.loc[hit, "flags"] = ""
+            b.loc[hit, "included"] = False
         frames.append(b)
-        offset += r.n_kept
     beats = pd.concat(frames, ignore_index=True) if frames else _empty_beats()
-    if beats.empty:
-        beats = _empty_beats()
-    tensor = np.concatenate([n[0] for n in normed]).astype(np.float32) if normed else \
-        np.zeros((0, n_ax, n_s), np.float32)
-    mask = np.concatenate([r.mask for r in results]).astype(bool)
-    center = np.concatenate([n[1] for n in normed]).astype(np.float32)
-    scale = np.concatenate([n[2] for n in normed]).astype(np.float32)
-    write_npy(out / "beats.npy", tensor)
-    write_npy(out / "lead_mask.npy", mask)
-    write_npy(out / "norm_center.npy", center)
-    write_npy(out / "norm_scale.npy", scale)
+    if "patient" not in beats:
+        beats["patient"], beats["split"], beats["_rec"], beats["_local"] = "", "", 0, -1
+
+    # ---- global order: split, then patient, then record and time -----------------------
+    rank = {"train": 0, "val": 1, "test": 2}
+    kept = beats[beats["included"]].copy()
+    kept["_rank"] = kept["split"].map(rank).fillna(3)
+    kept = kept.sort_values(["_rank", "patient", "record", "r_sample"], kind="stable")
+    beats["tensor_index"] = -1
+    beats.loc[kept.index, "tensor_index"] = np.arange(len(kept))
+    raw = (np.concatenate([results[k].tensor[li] [None] for k, li in
+                           zip(kept["_rec"], kept["_local"])]) if len(kept) else
+           np.zeros((0, n_ax, n_s)))
+    mask = (np.concatenate([results[k].mask[li][None] for k, li in
+                            zip(kept["_rec"], kept["_local"])]) if len(kept) else
+            np.zeros((0, n_ax), bool))
+    tensor, center, scale, norm_note = _normalize_all(raw, mask, kept, cfg)
+    ranges = {}
+    for sname in SPLITS:
+        idx = np.flatnonzero(kept["split"].to_numpy() == sname)
+        ranges[sname] = [int(idx[0]), int(idx[-1]) + 1] if idx.size else [0, 0]
+    beats = beats.drop(columns=["_rec", "_local"])
+    cols = [c for c in BEAT_COLUMNS if c in beats] + ["patient", "split"]
+    beats = beats[cols]
+
+    write_npy(out / "beats.npy", tensor.astype(np.float32))
+    write_npy(out / "lead_mask.npy", mask.astype(bool))
+    write_npy(out / "norm_center.npy", center.astype(np.float32))
+    write_npy(out / "norm_scale.npy", scale.astype(np.float32))
     write_parquet(out / "beats.parquet", beats)
     lead_rows = [row for r in results for row in r.leads]
     leads = pd.DataFrame(lead_rows) if lead_rows else pd.DataFrame(
         {c: [] for c in ("record", "lead", "source_name", "used", "reason", "in_axis")})
     write_parquet(out / "leads.parquet", leads)
+    n_kept_rec = beats[beats["included"]].groupby("record").size()
     records = pd.DataFrame({
         "record": [r.name for r in results], "status": [r.status for r in results],
         "error": [r.error for r in results], "fs": [float(r.fs) for r in results],
         "duration_s": [float(r.duration_s) for r in results],
         "n_leads": [int(r.n_leads) for r in results], "n_beats": [r.n_beats for r in results],
-        "n_kept": [r.n_kept for r in results],
+        "n_kept": [int(n_kept_rec.get(r.name, 0)) for r in results],
+        "patient": patients, "split": [split_of.get(p, "") for p in patients],
         "inputs": [[{"file": f, "sha256": h} for f, h in r.inputs] for r in results]})
     write_parquet(out / "records.parquet", records)
 
@@ -157,17 +220,32 @@ def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
     for cell in beats["reasons"]:
         for c in filter(None, str(cell).split(";")):
             reason_counts[c] = reason_counts.get(c, 0) + 1
+    kept_final = beats[beats["included"]]
+    split_info = {}
+    for sname in SPLITS:
+        part = kept_final[kept_final["split"] == sname]
+        split_info[sname] = {
+            "rows": ranges[sname], "beats": int(len(part)),
+            "patients": sorted(set(p for p, sv in zip(patients, records["split"]) if sv == sname)),
+            "classes": {str(k): int(v) for k, v in sorted(part["class"].value_counts().items())}}
     manifest = {
         "tool": {"name": "beatmill", "version": __version__},
-        "config_sha256": cfg.sha256(),
+        "config_sha256": cfg.sha256(extra),
         "config": cfg.to_dict(),
+        "resolved_files": extra,
         "environment": environment(),
         "lead_axis": axis,
         "tensor": {"file": "beats.npy", "shape": list(tensor.shape), "dtype": "float32",
                    "order": "C", "axes": ["beat", "lead", "sample"],
+                   "row_order": "split (train, val, test), then patient, record and time",
                    "normalization": {"method": cfg.normalize.method, "scope": cfg.normalize.scope,
+                                     "statistics_from": norm_note,
                                      "invert": "beat_mv = beats * norm_scale[..., None] + "
                                                "norm_center[..., None]"}},
+        "labels": {"window_ms": cfg.labels.window_ms,
+                   "classes": {**AAMI_CLASSES, **mapping}, "unlabeled": UNLABELED,
+                   "train_classes": sorted(train_classes)},
+        "splits": split_info,
         "inputs": {"given": given, "records": [str(s.path) for s in found]},
         "counts": {"records": len(results), "records_ok": len(results) - n_failed - n_nolead,
                    "records_failed": n_failed, "records_no_usable_lead": n_nolead,
@@ -183,4 +261,41 @@ def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
     code = (EXIT_NONE_USABLE if usable == 0 else EXIT_SOME_FAILED if usable < len(results)
             else EXIT_OK)
     return RunSummary(out, len(results), n_failed, n_nolead, int(len(beats)),
-                      int(tensor.shape[0]), axis, code)
+                      int(tensor.shape[0]), axis, code, split_info)
+
+
+def _normalize_all(raw: np.ndarray, mask: np.ndarray, kept: pd.DataFrame, cfg: Config):
+    """Normalize the ordered kept beats; dataset statistics come from the training split."""
+    m, scope = cfg.normalize.method, cfg.normalize.scope
+    if scope == "beat" or len(kept) == 0:
+        y, c, s = normalize(raw, mask, m, "beat")
+        return y, c, s, "each beat and lead"
+    if scope == "record":
+        c = np.zeros(mask.shape)
+        s = np.ones(mask.shape)
+        recs = kept["record"].to_numpy()
+        for name in pd.unique(recs):
+            sel = recs == name
+            cr, sr = fit_per_lead(raw[sel], mask[sel], m)
+            c[sel], s[sel] = cr, sr
+        y, c, s = apply_stats(raw, mask, c, s)
+        return y, c, s, "each record and lead"
+    train = kept["split"].to_numpy() == "train"
+    note = "the training split, per lead"
+    if not train.any():
+        train = np.ones(len(kept), bool)
+        note = "all kept beats, per lead (the training split is empty)"
+    c1, s1 = fit_per_lead(raw[train], mask[train], m)
+    y, c, s = apply_stats(raw, mask, c1[None, :], s1[None, :])
+    return y, c, s, note
+
+
+def split_summary(info: dict) -> str:
+    """The end-of-run table: beats per split and class, patients per split."""
+    classes = sorted({c for v in info.values() for c in v["classes"]})
+    head = f"{'split':<6}{'patients':>9}{'beats':>8}" + "".join(f"{c:>11}" for c in classes)
+    lines = [head]
+    for sname, v in info.items():
+        lines.append(f"{sname:<6}{len(v['patients']):>9}{v['beats']:>8}" +
+                     "".join(f"{v['classes'].get(c, 0):>11}" for c in classes))
+    return "\n".join(lines)

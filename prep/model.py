@@ -34,6 +34,7 @@ class Annotations:
     symbol: np.ndarray
     aux: np.ndarray | None = None
     source: str = ""
+    subtype: np.ndarray | None = None
 
 
 @dataclass
@@ -61,6 +62,7 @@ class Record:
     annotations: Annotations | None = None
     comments: list[str] = field(default_factory=list)
     path: str = ""
+    channels: list[int] = field(default_factory=list)  # source channel number of each lead
 
     @property
     def n_samples(self) -> int:

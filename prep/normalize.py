@@ -29,6 +29,27 @@ def statistics(beats: np.ndarray, method: str, axis) -> tuple[np.ndarray, np.nda
     return c, s
 
 
+def fit_per_lead(beats: np.ndarray, mask: np.ndarray, method: str) -> tuple[np.ndarray, np.ndarray]:
+    """Per-lead center and scale over all given beats (unmasked ones only): two (n_leads,) arrays."""
+    n_l = beats.shape[1]
+    c, s = np.zeros(n_l), np.ones(n_l)
+    for j in range(n_l):
+        sel = mask[:, j]
+        if sel.any():
+            cj, sj = statistics(beats[sel, j][:, None, :], method, axis=(0, 2))
+            c[j], s[j] = cj.ravel()[0], sj.ravel()[0]
+    return c, s
+
+
+def apply_stats(beats: np.ndarray, mask: np.ndarray, c: np.ndarray, s: np.ndarray):
+    """Normalize with given statistics, (n_beats, n_leads) or broadcastable; masked leads stay 0."""
+    c = np.where(mask, np.broadcast_to(c, mask.shape), 0.0)
+    s = np.where(mask, np.broadcast_to(s, mask.shape), 1.0)
+    y = (beats - c[..., None]) / s[..., None]
+    y[~mask] = 0.0
+    return y, c, s
+
+
 def normalize(beats: np.ndarray, mask: np.ndarray, method: str, scope: str):
     """Normalize ``beats`` (n_beats, n_leads, n_samples); statistics use only unmasked leads.
 
@@ -48,17 +69,6 @@ def normalize(beats: np.ndarray, mask: np.ndarray, method: str, scope: str):
         return beats.copy(), np.zeros((0, n_l)), np.ones((0, n_l))
     if scope == "beat":
         c, s = statistics(beats, method, axis=2)
-        c, s = c[..., 0], s[..., 0]
-    else:
-        c = np.zeros((n_b, n_l))
-        s = np.ones((n_b, n_l))
-        for j in range(n_l):
-            sel = mask[:, j]
-            if sel.any():
-                cj, sj = statistics(beats[sel, j][:, None, :], method, axis=(0, 2))
-                c[:, j], s[:, j] = cj.ravel()[0], sj.ravel()[0]
-    c = np.where(mask, c, 0.0)
-    s = np.where(mask, s, 1.0)
-    y = (beats - c[..., None]) / s[..., None]
-    y[~mask] = 0.0
-    return y, c, s
+        return apply_stats(beats, mask, c[..., 0], s[..., 0])
+    c, s = fit_per_lead(beats, mask, method)
+    return apply_stats(beats, mask, c[None, :], s[None, :])

@@ -19,10 +19,9 @@ from .bandpass import bandpass
 from .baseline import remove_baseline
 from .config import Config
 from .errors import BeatmillError, RecordError
-from .labels import attach_labels
+from .labels import attach_labels, beat_classes, noise_stretches, rhythm_at
 from .leads import match_lead
 from .model import Record, StageLog
-from .normalize import normalize
 from .powerline import remove_powerline
 from .quality import hf_ratio, high_freq, lead_faults, template_corr, window_fraction
 from .resample import cut_and_resample
@@ -32,7 +31,7 @@ from .segment import beat_windows
 log = logging.getLogger("prep")
 
 BEAT_COLUMNS = ["beat_id", "record", "r_sample", "r_time_s", "rr_prev_s", "rr_next_s", "included",
-                "reasons", "tensor_index", "flags", "label", "detect_conf", "n_leads_seen",
+                "reasons", "tensor_index", "flags", "label", "class", "rhythm", "detect_conf", "n_leads_seen",
                 "template_corr", "hf_ratio", "bad_fraction"]
 
 
@@ -52,6 +51,7 @@ class RecordResult:
     mask: np.ndarray | None = None             # (n_kept, n_axis) bool
     leads: list[dict] = field(default_factory=list)
     logs: list[StageLog] = field(default_factory=list)
+    comments: list[str] = field(default_factory=list)
 
     @property
     def n_beats(self) -> int:
@@ -78,15 +78,20 @@ def fill_gaps(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def _empty_beats() -> pd.DataFrame:
     return pd.DataFrame({c: pd.Series(dtype=t) for c, t in zip(
         BEAT_COLUMNS, ["str", "str", "int64", "float64", "float64", "float64", "bool", "str",
-                       "int64", "str", "str", "float64", "int64", "float64", "float64", "float64"])})
+                       "int64", "str", "str", "str", "str", "float64", "int64", "float64",
+                       "float64", "float64"])})
 
 
-def process_record(rec: Record, cfg: Config, axis: list[str]) -> RecordResult:
-    """Run every stage on one record. Raises :class:`RecordError` for record-level failures."""
+def process_record(rec: Record, cfg: Config, axis: list[str],
+                   mapping: dict[str, str] | None = None) -> RecordResult:
+    """Run every stage on one record. Raises :class:`RecordError` for record-level failures.
+
+    ``mapping``: symbol -> class overrides (see :func:`prep.labels.load_mapping`).
+    """
     fs = rec.fs
     n_ax = len(axis)
     res = RecordResult(rec.name, "ok", fs=fs, duration_s=rec.duration_s, n_leads=len(rec.leads),
-                       inputs=rec.inputs)
+                       inputs=rec.inputs, comments=list(rec.comments))
     min_len = int(round((cfg.segment.before_ms + cfg.segment.after_ms) * fs / 1000))
     if rec.n_samples < max(min_len, int(2 * fs)):
         raise RecordError(f"record is {rec.duration_s:.3g} s long; at least "
@@ -182,6 +187,14 @@ def process_record(rec: Record, cfg: Config, axis: list[str]) -> RecordResult:
         badf[vi] = window_fraction(bad[[rows_src[j] for j in use]], start[valid],
                                    end[valid]).max(axis=1)
     flags: list[list[str]] = [[] for _ in range(n)]
+    if cfg.labels.exclude_annotated_noise and rec.annotations is not None:
+        channels = rec.channels or list(range(len(rec.leads)))
+        noisy = noise_stretches(rec.annotations, rec.n_samples, channels)
+        used_ax = [rows_src[j] for j in use]
+        if used_ax and noisy[used_ax].any():
+            hit = window_fraction(noisy[used_ax], start[valid], end[valid]).max(axis=1) > 0
+            for i in vi[hit]:
+                reasons[i].append("annotated_noise")
     for i in vi:
         if badf[i] > q.max_bad_fraction_in_beat:
             reasons[i].append("flat_or_clipped")
@@ -207,14 +220,15 @@ def process_record(rec: Record, cfg: Config, axis: list[str]) -> RecordResult:
     res.mask = np.broadcast_to(slot_ok, (res.tensor.shape[0], n_ax)).copy()
 
     rr_prev, rr_next = _rr(r, ra, fs)
-    labels = attach_labels(r, rec.annotations, fs, cfg.read.label_window_ms)
+    labels = attach_labels(r, rec.annotations, fs, cfg.labels.window_ms)
     res.beats = pd.DataFrame({
         "beat_id": [f"{rec.name}:{int(s)}" for s in r], "record": rec.name,
         "r_sample": r.astype(np.int64), "r_time_s": r / fs, "rr_prev_s": rr_prev,
         "rr_next_s": rr_next, "included": included,
         "reasons": [R.join(x) for x in reasons], "tensor_index": tensor_index,
         "flags": [R.join(x) if inc else "" for x, inc in zip(flags, included)],
-        "label": labels.astype(str), "detect_conf": np.round(fused.confidence, 6),
+        "label": labels.astype(str), "class": beat_classes(labels, mapping).astype(str),
+        "rhythm": rhythm_at(r, rec.annotations).astype(str), "detect_conf": np.round(fused.confidence, 6),
         "n_leads_seen": fused.support.sum(axis=1).astype(np.int64),
         "template_corr": np.round(tc, 6), "hf_ratio": np.round(hfr, 6),
         "bad_fraction": np.round(badf, 6)})
@@ -241,11 +255,11 @@ def _fault_reason(f: dict) -> str:
 
 
 def safe_process(rec_loader: Callable[[], Record], name: str, cfg: Config,
-                 axis: list[str]) -> RecordResult:
+                 axis: list[str], mapping: dict[str, str] | None = None) -> RecordResult:
     """Read and process one record; any failure becomes a ``failed`` result with a message."""
     try:
         rec = rec_loader()
-        return process_record(rec, cfg, axis)
+        return process_record(rec, cfg, axis, mapping)
     except BeatmillError as exc:
         return RecordResult(name, "failed", error=str(exc))
     except MemoryError:
@@ -255,19 +269,3 @@ def safe_process(rec_loader: Callable[[], Record], name: str, cfg: Config,
         log.debug("unexpected error in %s:\n%s", name, traceback.format_exc())
         return RecordResult(name, "failed", error=f"unexpected {type(exc).__name__}: {exc} "
                                                   "(please report this with the record)")
-
-
-def normalize_results(results: list[RecordResult], cfg: Config) -> list[tuple[np.ndarray, ...]]:
-    """Normalize every record's kept beats; returns (beats, center, scale) per record."""
-    m, scope = cfg.normalize.method, cfg.normalize.scope
-    if scope != "dataset":
-        return [normalize(r.tensor, r.mask, m, scope) for r in results]
-    allb = np.concatenate([r.tensor for r in results]) if results else np.zeros((0, 0, 0))
-    allm = np.concatenate([r.mask for r in results]) if results else np.zeros((0, 0), bool)
-    y, c, s = normalize(allb, allm, m, "dataset")
-    out, a = [], 0
-    for r in results:
-        b = a + r.n_kept
-        out.append((y[a:b], c[a:b], s[a:b]))
-        a = b
-    return out

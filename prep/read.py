@@ -146,7 +146,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     return Record(name=name or base.name, fs=fs, signals=data,
                   lead_names=[names[i] for i in keep], leads=[canonical_lead(names[i]) for i in keep],
                   units=["mV"] * len(keep), inputs=inputs, skipped=skipped, annotations=ann,
-                  comments=list(rec.comments or []), path=shown)
+                  comments=list(rec.comments or []), path=shown, channels=keep)
 
 
 def _read_wfdb_annotations(base: Path, ext: str, n_samples: int) -> Annotations | None:
@@ -163,9 +163,10 @@ def _read_wfdb_annotations(base: Path, ext: str, n_samples: int) -> Annotations 
     sample = np.asarray(a.sample, dtype=np.int64)
     symbol = np.asarray(a.symbol, dtype=object)
     aux = np.asarray(a.aux_note if a.aux_note is not None else [""] * len(sample), dtype=object)
+    sub = np.asarray(a.subtype if a.subtype is not None else np.zeros(len(sample)), dtype=np.int64)
     inside = (sample >= 0) & (sample < n_samples)
     return Annotations(sample=sample[inside], symbol=symbol[inside], aux=aux[inside],
-                       source=path.name)
+                       source=path.name, subtype=sub[inside])
 
 
 def read_csv(path: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | None = None,
@@ -221,4 +222,5 @@ def read_csv(path: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | No
     return Record(name=name or path.stem, fs=rate, signals=np.ascontiguousarray(data),
                   lead_names=[str(c) for c in keep], leads=[canonical_lead(str(c)) for c in keep],
                   units=["mV"] * len(keep), inputs=[(f.name, sha256_file(f)) for f in files],
-                  skipped=skipped, path=shown)
+                  skipped=skipped, path=shown,
+                  channels=[list(df.columns).index(c) for c in keep])

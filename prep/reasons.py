@@ -17,6 +17,11 @@ REASONS: dict[str, tuple[str, str]] = {
                                    "amplitude"),
     "unlike_neighbours": ("quality", "correlation with the running median beat below "
                                      "quality.exclude_template_corr"),
+    "annotated_noise": ("labels", "inside a stretch the reference annotator marked noisy or "
+                                  "unreadable in a used lead (WFDB '~' annotations)"),
+    "not_train_class": ("split", "a training patient's beat whose class is not in "
+                                 "labels.train_classes (never moved to another split)"),
+    "not_in_split_lists": ("split", "fixed split lists are given and the beat's patient is in none"),
     "lead_missing": ("segment", "a lead of the axis is missing or rejected and "
                                 "leads.drop_incomplete_beats is on"),
 }

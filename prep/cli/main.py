@@ -47,15 +47,21 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
         leads: Optional[str] = typer.Option(None, "--leads", help="Lead axis, comma-separated, "
                                             "e.g. MLII,V5 (aliases understood)."),
         fs: Optional[float] = typer.Option(None, "--fs", help="Sampling rate of CSV inputs in Hz."),
+        train_classes: Optional[str] = typer.Option(None, "--train-classes",
+                                                    help="Classes kept in the training split, "
+                                                         "comma-separated, e.g. N."),
+        patients: Optional[Path] = typer.Option(None, "--patients", help="CSV record,patient "
+                                                "mapping for patient-wise splits."),
+        seed: Optional[int] = typer.Option(None, "--seed", help="Seed of the patient split."),
         overwrite: bool = typer.Option(False, "--overwrite",
                                        help="Replace an existing dataset folder."),
         verbose: int = typer.Option(0, "--verbose", "-v", count=True, help="More messages."),
         quiet: bool = typer.Option(False, "--quiet", "-q", help="Errors only.")) -> None:
-    """Process records and write a dataset folder.
+    """Process records and write a dataset folder, split by patient.
 
     Example:
 
-      beatmill run demo_records --out runs/demo --leads II,V5
+      beatmill run demo_records --out runs/demo --leads II,V5 --train-classes N
     """
     _setup_logging(verbose, quiet)
     from ..config import Config
@@ -66,6 +72,13 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
         cfg = Config.from_toml(config) if config else Config()
         if leads:
             cfg = cfg.replace(leads={"select": [s.strip() for s in leads.split(",") if s.strip()]})
+        if train_classes:
+            cfg = cfg.replace(labels={"train_classes": [c.strip() for c in train_classes.split(",")
+                                                        if c.strip()]})
+        if patients:
+            cfg = cfg.replace(split={"patient_map": str(patients)})
+        if seed is not None:
+            cfg = cfg.replace(split={"seed": seed})
     except ConfigError as exc:
         _fail("\n  ".join(["configuration is invalid:"] + exc.problems))
     progress, stop = _progress(quiet)
@@ -83,6 +96,9 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
                f"({summary.n_failed} failed, {summary.n_no_lead} without a usable lead), "
                f"{summary.n_beats} beats detected, {summary.n_kept} kept; lead axis "
                f"{','.join(summary.axis)}")
+    if summary.splits and not quiet:
+        from ..dataset import split_summary
+        typer.echo(split_summary(summary.splits))
     raise typer.Exit(summary.exit_code)
 
 
