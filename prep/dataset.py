@@ -98,7 +98,10 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         results.append(res)
         if progress:
             progress(res, i + 1, len(found))
-    return _write(out, results, cfg, axis, [str(s) for s in sources], found, mapping, pmap, extra)
+    a = assemble(results, cfg, axis, [str(s) for s in sources], [str(s.path) for s in found],
+                 mapping, pmap, extra)
+    write_assembled(out, a)
+    return _summary(out, a)
 
 
 def _prepare_out(out: Path, overwrite: bool) -> None:
@@ -122,9 +125,24 @@ def _resolve_extras(cfg: Config) -> tuple[dict, dict, dict]:
     return mapping, pmap, {"labels.mapping": mapping, "split.patient_map": pmap}
 
 
-def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
-           given: list[str], found: list[Source], mapping: dict, pmap: dict,
-           extra: dict) -> RunSummary:
+@dataclass
+class Assembled:
+    """A whole dataset in memory: what a run folder holds, before it is written."""
+
+    beats: np.ndarray          # (n_kept, n_leads, n_samples) float32, normalized
+    lead_mask: np.ndarray      # (n_kept, n_leads) bool
+    norm_center: np.ndarray    # (n_kept, n_leads) float32
+    norm_scale: np.ndarray     # (n_kept, n_leads) float32
+    table: pd.DataFrame        # beats.parquet
+    leads: pd.DataFrame        # leads.parquet
+    records: pd.DataFrame      # records.parquet
+    manifest: dict             # manifest.json without the file checksums
+    exit_code: int
+
+
+def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: list[str],
+             record_paths: list[str], mapping: dict, pmap: dict, extra: dict) -> Assembled:
+    """Split, order, normalize and tabulate processed records into one dataset (no I/O)."""
     n_ax, n_s = len(axis), cfg.resample.n_samples
     for r in results:  # failed records contribute empty arrays of the right shape
         if r.tensor is None:
@@ -193,16 +211,9 @@ def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
     beats = beats.drop(columns=["_rec", "_local"])
     cols = [c for c in BEAT_COLUMNS if c in beats] + ["patient", "split"]
     beats = beats[cols]
-
-    write_npy(out / "beats.npy", tensor.astype(np.float32))
-    write_npy(out / "lead_mask.npy", mask.astype(bool))
-    write_npy(out / "norm_center.npy", center.astype(np.float32))
-    write_npy(out / "norm_scale.npy", scale.astype(np.float32))
-    write_parquet(out / "beats.parquet", beats)
     lead_rows = [row for r in results for row in r.leads]
     leads = pd.DataFrame(lead_rows) if lead_rows else pd.DataFrame(
         {c: [] for c in ("record", "lead", "source_name", "used", "reason", "in_axis")})
-    write_parquet(out / "leads.parquet", leads)
     n_kept_rec = beats[beats["included"]].groupby("record").size()
     records = pd.DataFrame({
         "record": [r.name for r in results], "status": [r.status for r in results],
@@ -212,7 +223,6 @@ def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
         "n_kept": [int(n_kept_rec.get(r.name, 0)) for r in results],
         "patient": patients, "split": [split_of.get(p, "") for p in patients],
         "inputs": [[{"file": f, "sha256": h} for f, h in r.inputs] for r in results]})
-    write_parquet(out / "records.parquet", records)
 
     n_failed = sum(r.status == "failed" for r in results)
     n_nolead = sum(r.status == "no_usable_lead" for r in results)
@@ -246,7 +256,7 @@ def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
                    "classes": {**AAMI_CLASSES, **mapping}, "unlabeled": UNLABELED,
                    "train_classes": sorted(train_classes)},
         "splits": split_info,
-        "inputs": {"given": given, "records": [str(s.path) for s in found]},
+        "inputs": {"given": given, "records": record_paths},
         "counts": {"records": len(results), "records_ok": len(results) - n_failed - n_nolead,
                    "records_failed": n_failed, "records_no_usable_lead": n_nolead,
                    "beats": int(len(beats)), "beats_kept": int(tensor.shape[0]),
@@ -254,14 +264,33 @@ def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
                    "excluded_by_reason": dict(sorted(reason_counts.items()))},
         "records": {r.name: {"status": r.status, "error": r.error,
                              "stages": [lg.to_dict() for lg in r.logs]} for r in results},
-        "files": {f: sha256_path(out / f) for f in TENSOR_FILES + TABLE_FILES},
     }
-    write_manifest(out / MANIFEST, manifest)
     usable = len(results) - n_failed - n_nolead
     code = (EXIT_NONE_USABLE if usable == 0 else EXIT_SOME_FAILED if usable < len(results)
             else EXIT_OK)
-    return RunSummary(out, len(results), n_failed, n_nolead, int(len(beats)),
-                      int(tensor.shape[0]), axis, code, split_info)
+    return Assembled(tensor.astype(np.float32), mask.astype(bool), center.astype(np.float32),
+                     scale.astype(np.float32), beats, leads, records, manifest, code)
+
+
+def write_assembled(out: Path, a: Assembled) -> None:
+    """Write an assembled dataset; the manifest, holding every file's SHA-256, comes last."""
+    write_npy(out / "beats.npy", a.beats)
+    write_npy(out / "lead_mask.npy", a.lead_mask)
+    write_npy(out / "norm_center.npy", a.norm_center)
+    write_npy(out / "norm_scale.npy", a.norm_scale)
+    write_parquet(out / "beats.parquet", a.table)
+    write_parquet(out / "leads.parquet", a.leads)
+    write_parquet(out / "records.parquet", a.records)
+    manifest = {**a.manifest,
+                "files": {f: sha256_path(out / f) for f in TENSOR_FILES + TABLE_FILES}}
+    write_manifest(out / MANIFEST, manifest)
+
+
+def _summary(out: Path, a: Assembled) -> RunSummary:
+    c = a.manifest["counts"]
+    return RunSummary(out, c["records"], c["records_failed"], c["records_no_usable_lead"],
+                      c["beats"], c["beats_kept"], a.manifest["lead_axis"], a.exit_code,
+                      a.manifest["splits"])
 
 
 def _normalize_all(raw: np.ndarray, mask: np.ndarray, kept: pd.DataFrame, cfg: Config):

@@ -1,0 +1,176 @@
+"""The Python door: process arrays in memory, and open a finished dataset read-only."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .config import Config
+from .dataset import Assembled, assemble, _resolve_extras
+from .errors import BeatmillError
+from .leads import canonical_lead, default_axis, resolve_axis
+from .model import Annotations, Record
+from .pipeline import safe_process
+from .reasons import FLAGS, REASONS
+
+# reason -> (score column, config section, config key) for explanations
+_EVIDENCE = {
+    "high_freq_noise": ("hf_ratio", "quality", "max_hf_ratio"),
+    "flat_or_clipped": ("bad_fraction", "quality", "max_bad_fraction_in_beat"),
+    "unlike_neighbours": ("template_corr", "quality", "exclude_template_corr"),
+    "one_lead_only": ("n_leads_seen", "rpeaks", "min_lead_template_corr"),
+}
+
+
+def process(signals, fs: float, *, leads: list[str] | None = None, config: Config | None = None,
+            name: str = "memory", annotations: Annotations | None = None) -> Assembled:
+    """Run the whole pipeline on in-memory arrays; nothing touches the disk.
+
+    Parameters
+    ----------
+    signals : array, shape (n_leads, n_samples)
+        ECG in mV (NaN marks missing samples).
+    fs : float
+        Sampling rate in Hz.
+    leads : list of str, optional
+        Lead names (default ECG1, ECG2...). The lead axis is ``config.leads.select`` or these.
+    annotations : Annotations, optional
+        Reference annotations, for labels.
+
+    Returns
+    -------
+    Assembled
+        ``.beats`` (float32 tensor), ``.lead_mask``, ``.norm_center``, ``.norm_scale``,
+        ``.table`` (the beats.parquet rows), ``.leads``, ``.records``, ``.manifest``.
+
+    Examples
+    --------
+    >>> from prep.demo import SPECS, synthesize
+    >>> d, names, r, sym, _ = synthesize(SPECS[0])
+    >>> out = process(d / 1000.0, 250.0, leads=names)
+    >>> out.beats.shape[1:], int(out.table.included.sum()) == out.beats.shape[0]
+    ((2, 256), True)
+    """
+    cfg = (config or Config()).validate()
+    x = np.asarray(signals, dtype=np.float64)
+    if x.ndim == 1:
+        x = x[None]
+    if x.ndim != 2:
+        raise BeatmillError(f"process: signals must have shape (n_leads, n_samples); got {x.shape}")
+    names = list(leads) if leads else [f"ECG{i + 1}" for i in range(x.shape[0])]
+    if len(names) != x.shape[0]:
+        raise BeatmillError(f"process: {len(names)} lead names for {x.shape[0]} leads")
+    canon = [canonical_lead(n) for n in names]
+    rec = Record(name=name, fs=float(fs), signals=x, lead_names=names, leads=canon,
+                 units=["mV"] * len(names), annotations=annotations, path=f"<{name}>",
+                 channels=list(range(len(names))))
+    axis = resolve_axis(cfg.leads.select) if cfg.leads.select else default_axis([canon])
+    mapping, pmap, extra = _resolve_extras(cfg)
+    res = safe_process(lambda: rec, name, cfg, axis, mapping)
+    return assemble([res], cfg, axis, [f"<{name}>"], [f"<{name}>"], mapping, pmap, extra)
+
+
+class Dataset:
+    """Read-only view of a finished run folder (see :func:`open_dataset`)."""
+
+    def __init__(self, run_dir: str | Path):
+        self.path = Path(run_dir)
+        mpath = self.path / "manifest.json"
+        if not mpath.exists():
+            raise BeatmillError(f"{self.path} is not a beatmill dataset (no manifest.json); write "
+                                "one with 'beatmill run ... --out DIR'")
+        self.manifest: dict = json.loads(mpath.read_text(encoding="utf-8"))
+        self.beats = np.load(self.path / "beats.npy", mmap_mode="r")
+        self.lead_mask = np.load(self.path / "lead_mask.npy", mmap_mode="r")
+        self.norm_center = np.load(self.path / "norm_center.npy", mmap_mode="r")
+        self.norm_scale = np.load(self.path / "norm_scale.npy", mmap_mode="r")
+        self._tables: dict[str, pd.DataFrame] = {}
+
+    def _table(self, name: str) -> pd.DataFrame:
+        if name not in self._tables:
+            self._tables[name] = pd.read_parquet(self.path / f"{name}.parquet")
+        return self._tables[name]
+
+    @property
+    def table(self) -> pd.DataFrame:
+        """beats.parquet: one row per detected beat."""
+        return self._table("beats")
+
+    @property
+    def leads(self) -> pd.DataFrame:
+        return self._table("leads")
+
+    @property
+    def records(self) -> pd.DataFrame:
+        return self._table("records")
+
+    @property
+    def lead_axis(self) -> list[str]:
+        return list(self.manifest["lead_axis"])
+
+    @property
+    def class_names(self) -> list[str]:
+        """Class order used for label indices: N, S, V, F, Q, custom classes, unlabeled."""
+        lab = self.manifest.get("labels", {})
+        found = set(lab.get("classes", {}).values())
+        base = [c for c in ("N", "S", "V", "F", "Q")]
+        return base + sorted(found - set(base)) + [lab.get("unlabeled", "unlabeled")]
+
+    def split(self, name: str) -> tuple[np.ndarray, pd.DataFrame]:
+        """The contiguous tensor slice of a split (a memory-mapped view) and its kept rows."""
+        info = self.manifest.get("splits", {})
+        if name not in info:
+            raise BeatmillError(f"split must be one of {', '.join(info)}; got {name!r}")
+        a, b = info[name]["rows"]
+        t = self.table
+        rows = t[t["included"] & (t["tensor_index"] >= a) & (t["tensor_index"] < b)]
+        return self.beats[a:b], rows.sort_values("tensor_index").reset_index(drop=True)
+
+    def explain(self, beat_id: str) -> dict:
+        """What happened to one beat, as data: where, label, kept or not, and why."""
+        t = self.table
+        hit = t[t["beat_id"] == beat_id]
+        if hit.empty:
+            raise BeatmillError(f"no beat {beat_id!r} in {self.path}; beat ids look like "
+                                f"{t['beat_id'].iloc[0] if len(t) else 'record:sample'}")
+        row = hit.iloc[0]
+        cfg = self.manifest["config"]
+        reasons = []
+        for code in filter(None, str(row["reasons"]).split(";")):
+            stage, text = REASONS.get(code, ("?", "unknown code"))
+            item = {"code": code, "stage": stage, "explanation": text}
+            if code in _EVIDENCE:
+                col, sec, key = _EVIDENCE[code]
+                item.update(score_name=col, score=_num(row[col]), threshold_name=f"{sec}.{key}",
+                            threshold=cfg[sec][key])
+            reasons.append(item)
+        flags = [{"code": f, "explanation": FLAGS.get(f, "")}
+                 for f in filter(None, str(row["flags"]).split(";"))]
+        rec_leads = self.leads[self.leads["record"] == row["record"]]
+        return {"beat_id": beat_id, "record": row["record"], "patient": row.get("patient", ""),
+                "split": row.get("split", ""), "r_sample": int(row["r_sample"]),
+                "r_time_s": float(row["r_time_s"]), "label": row["label"],
+                "class": row.get("class", ""), "included": bool(row["included"]),
+                "tensor_index": int(row["tensor_index"]), "reasons": reasons, "flags": flags,
+                "scores": {c: _num(row[c]) for c in ("detect_conf", "n_leads_seen",
+                                                     "template_corr", "hf_ratio", "bad_fraction")},
+                "leads_used": rec_leads[rec_leads["used"]]["lead"].tolist()}
+
+
+def _num(v):
+    v = float(v)
+    return None if not np.isfinite(v) else v
+
+
+def open_dataset(run_dir: str | Path) -> Dataset:
+    """Open a finished run folder read-only (tensors memory-mapped, tables loaded on use).
+
+    >>> import tempfile, prep
+    >>> d = prep.open_dataset(prep.run(["demo_records/night01.hea"], tempfile.mkdtemp() + "/r").out)
+    >>> view, rows = d.split("test")
+    >>> view.shape[0] == len(rows)
+    True
+    """
+    return Dataset(run_dir)
