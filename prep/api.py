@@ -13,6 +13,7 @@ from .errors import BeatmillError
 from .leads import canonical_lead, default_axis, resolve_axis
 from .model import Annotations, Record
 from .pipeline import safe_process
+from .read import _check_rate
 from .reasons import FLAGS, REASONS
 
 # reason -> (score column, config section, config key) for explanations
@@ -63,12 +64,17 @@ def process(signals, fs: float, *, leads: list[str] | None = None, config: Confi
     if len(names) != x.shape[0]:
         raise BeatmillError(f"process: {len(names)} lead names for {x.shape[0]} leads")
     canon = [canonical_lead(n) for n in names]
+    if not np.isfinite(fs) or fs <= 0:
+        raise BeatmillError(f"process: fs must be a positive rate in Hz; got {fs!r}")
     rec = Record(name=name, fs=float(fs), signals=x, lead_names=names, leads=canon,
                  units=["mV"] * len(names), annotations=annotations, path=f"<{name}>",
                  channels=list(range(len(names))))
     axis = resolve_axis(cfg.leads.select) if cfg.leads.select else default_axis([canon])
     mapping, pmap, extra = _resolve_extras(cfg)
-    res = safe_process(lambda: rec, name, cfg, axis, mapping)
+    def load() -> Record:
+        _check_rate(float(fs), f"<{name}>")
+        return rec
+    res = safe_process(load, name, cfg, axis, mapping)
     return assemble([res], cfg, axis, [f"<{name}>"], [f"<{name}>"], mapping, pmap, extra)
 
 

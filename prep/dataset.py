@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import logging
+import os
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -100,11 +101,33 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
             progress(res, i + 1, len(found))
     a = assemble(results, cfg, axis, [str(s) for s in sources], [str(s.path) for s in found],
                  mapping, pmap, extra)
-    write_assembled(out, a)
+    _write_in_place(out, a)
     return _summary(out, a)
 
 
+def _write_in_place(out: Path, a: Assembled) -> None:
+    """Write into a staging folder beside ``out``, then swap it in; on any error (no space, no
+    permission) the staging folder is removed and ``out`` is left as it was."""
+    out.parent.mkdir(parents=True, exist_ok=True)
+    stage = out.parent / f".{out.name}.partial-{os.getpid()}"
+    old = out.parent / f".{out.name}.old-{os.getpid()}"
+    shutil.rmtree(stage, ignore_errors=True)
+    try:
+        stage.mkdir()
+        write_assembled(stage, a)
+        if out.exists():
+            out.rename(old)
+        stage.rename(out)
+    except BaseException:
+        shutil.rmtree(stage, ignore_errors=True)
+        if old.exists() and not out.exists():
+            old.rename(out)
+        raise
+    shutil.rmtree(old, ignore_errors=True)
+
+
 def _prepare_out(out: Path, overwrite: bool) -> None:
+    """Refuse, before any work, an output that is in the way; nothing is deleted here."""
     if out.exists() and not out.is_dir():
         raise ConfigError(f"output {out} exists and is not a folder; choose another --out")
     if out.exists() and any(out.iterdir()):
@@ -114,8 +137,14 @@ def _prepare_out(out: Path, overwrite: bool) -> None:
         if not (out / MANIFEST).exists():
             raise ConfigError(f"refusing to replace {out}: it holds files but no {MANIFEST}, so "
                               "it is not a beatmill dataset; remove it yourself if you mean it")
-        shutil.rmtree(out)
-    out.mkdir(parents=True, exist_ok=True)
+    if not os.access(out if out.exists() else _existing_parent(out), os.W_OK):
+        raise ConfigError(f"cannot write to {out}: permission denied; choose another --out")
+
+
+def _existing_parent(p: Path) -> Path:
+    while not p.exists():
+        p = p.parent
+    return p
 
 
 def _resolve_extras(cfg: Config) -> tuple[dict, dict, dict]:
@@ -222,6 +251,7 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
         "n_leads": [int(r.n_leads) for r in results], "n_beats": [r.n_beats for r in results],
         "n_kept": [int(n_kept_rec.get(r.name, 0)) for r in results],
         "patient": patients, "split": [split_of.get(p, "") for p in patients],
+        "warnings": ["; ".join(r.warnings) for r in results],
         "inputs": [[{"file": f, "sha256": h} for f, h in r.inputs] for r in results]})
 
     n_failed = sum(r.status == "failed" for r in results)
@@ -262,7 +292,7 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
                    "beats": int(len(beats)), "beats_kept": int(tensor.shape[0]),
                    "beats_excluded": int(len(beats) - tensor.shape[0]),
                    "excluded_by_reason": dict(sorted(reason_counts.items()))},
-        "records": {r.name: {"status": r.status, "error": r.error,
+        "records": {r.name: {"status": r.status, "error": r.error, "warnings": r.warnings,
                              "stages": [lg.to_dict() for lg in r.logs]} for r in results},
     }
     usable = len(results) - n_failed - n_nolead

@@ -63,6 +63,7 @@ class Record:
     comments: list[str] = field(default_factory=list)
     path: str = ""
     channels: list[int] = field(default_factory=list)  # source channel number of each lead
+    warnings: list[str] = field(default_factory=list)  # problems the reader worked around
 
     @property
     def n_samples(self) -> int:

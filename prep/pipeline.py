@@ -22,6 +22,7 @@ from .errors import BeatmillError, RecordError
 from .labels import attach_labels, beat_classes, noise_stretches, rhythm_at
 from .leads import match_lead
 from .model import Record, StageLog
+from .read import BEAT_SYMBOLS
 from .powerline import remove_powerline
 from .quality import hf_ratio, high_freq, lead_faults, template_corr, window_fraction
 from .resample import cut_and_resample
@@ -52,6 +53,7 @@ class RecordResult:
     leads: list[dict] = field(default_factory=list)
     logs: list[StageLog] = field(default_factory=list)
     comments: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
 
     @property
     def n_beats(self) -> int:
@@ -91,7 +93,8 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     fs = rec.fs
     n_ax = len(axis)
     res = RecordResult(rec.name, "ok", fs=fs, duration_s=rec.duration_s, n_leads=len(rec.leads),
-                       inputs=rec.inputs, comments=list(rec.comments))
+                       inputs=rec.inputs, comments=list(rec.comments),
+                       warnings=list(rec.warnings))
     min_len = int(round((cfg.segment.before_ms + cfg.segment.after_ms) * fs / 1000))
     if rec.n_samples < max(min_len, int(2 * fs)):
         raise RecordError(f"record is {rec.duration_s:.3g} s long; at least "
@@ -221,6 +224,15 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
 
     rr_prev, rr_next = _rr(r, ra, fs)
     labels = attach_labels(r, rec.annotations, fs, cfg.labels.window_ms)
+    if rec.annotations is not None and ra.size >= 20:
+        n_ann = int(np.isin(rec.annotations.symbol, list(BEAT_SYMBOLS)).sum())
+        hit = float((labels[fused.accepted] != "").mean())
+        if n_ann >= 20 and hit < 0.5:
+            res.warnings.append(f"reference annotations ({rec.annotations.source}) do not fit this "
+                                f"signal: only {hit:.0%} of detected beats have one within "
+                                f"{cfg.labels.window_ms:g} ms; labels not attached (is the file "
+                                "for another record?)")
+            labels = np.full(r.size, "", dtype=object)
     res.beats = pd.DataFrame({
         "beat_id": [f"{rec.name}:{int(s)}" for s in r], "record": rec.name,
         "r_sample": r.astype(np.int64), "r_time_s": r / fs, "rr_prev_s": rr_prev,

@@ -31,6 +31,17 @@ class Source:
     name: str
 
 
+MIN_FS_HZ = 50.0       # below this the QRS band (5-20 Hz) and its slopes are not resolved
+MAX_FS_HZ = 100_000.0  # beyond this a rate is not believable for ECG
+
+
+def _check_rate(fs: float, shown: str) -> None:
+    if not np.isfinite(fs) or not MIN_FS_HZ <= fs <= MAX_FS_HZ:
+        raise RecordError(f"sampling rate {fs:g} Hz is not usable (ECG needs {MIN_FS_HZ:g} to "
+                          f"{MAX_FS_HZ:g} Hz); fix the rate field or pass the right --fs",
+                          path=shown, stage="read")
+
+
 def sha256_file(path: Path) -> str:
     h = hashlib.sha256()
     with open(path, "rb") as fh:
@@ -109,8 +120,11 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     base = Path(base)
     hea = Path(str(base) + ".hea")
     shown = str(hea)
+    warnings: list[str] = []
+    sampto = _check_header(base, shown, warnings)
     try:
-        rec = wfdb.rdrecord(str(base), physical=True, return_res=64)
+        rec = wfdb.rdrecord(str(base), physical=True, return_res=64,
+                            **({"sampto": sampto} if sampto else {}))
     except FileNotFoundError as exc:
         raise RecordError(f"a file of the record is missing ({exc.filename or exc}); restore it or "
                           "leave the record out", path=shown, stage="read") from None
@@ -118,9 +132,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
         raise RecordError(f"cannot read the WFDB record ({type(exc).__name__}: {exc}); check the "
                           "header and signal files", path=shown, stage="read") from None
     fs = float(rec.fs or 0)
-    if not np.isfinite(fs) or fs <= 0 or fs > 100_000:
-        raise RecordError(f"sampling rate {rec.fs!r} Hz is not usable; fix the header's frequency "
-                          "field", path=shown, stage="read")
+    _check_rate(fs, shown)
     sig = rec.p_signal
     if sig is None or sig.size == 0:
         raise RecordError("the record holds no samples", path=shown, stage="read")
@@ -143,10 +155,98 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     if ann is not None:
         files.add(Path(str(base) + "." + cfg.annotation_extension))
     inputs = [(f.name, sha256_file(f)) for f in sorted(files) if f.exists()]
-    return Record(name=name or base.name, fs=fs, signals=data,
+    bad = ~np.isfinite(data)
+    if bad.any():
+        warnings.append(f"{int(bad.sum())} missing or non-finite samples become gaps")
+    return Record(name=name or base.name, fs=fs, signals=data, warnings=warnings,
                   lead_names=[names[i] for i in keep], leads=[canonical_lead(names[i]) for i in keep],
                   units=["mV"] * len(keep), inputs=inputs, skipped=skipped, annotations=ann,
                   comments=list(rec.comments or []), path=shown, channels=keep)
+
+
+# bytes per sample of the WFDB storage formats whose size is fixed (WFDB signal file formats)
+_FMT_BYTES = {"8": 1, "16": 2, "24": 3, "32": 4, "61": 2, "80": 1, "160": 2, "212": 1.5,
+              "310": 4 / 3, "311": 4 / 3}
+_MAX_SAMPLES = 2_000_000_000  # per signal; beyond this a header is not believable
+
+
+def _check_header(base: Path, shown: str, warnings: list[str]) -> int | None:
+    """Check a header against its signal files before reading; returns a safe ``sampto``.
+
+    Catches what would otherwise crash or exhaust memory: text that is not a header, a missing or
+    absurd rate or length, and a declared length far beyond what the files hold (then only the
+    samples present are read, with a warning).
+    """
+    import wfdb
+
+    hea = Path(str(base) + ".hea")
+    try:
+        raw = hea.read_bytes()
+    except FileNotFoundError:
+        raise RecordError("header file is missing", path=shown, stage="read") from None
+    if b"\x00" in raw[:4096]:
+        raise RecordError("this is not a WFDB header (binary content); point at the .hea text "
+                          "file", path=shown, stage="read")
+    text = raw.decode("latin-1")
+    lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+    if not lines:
+        raise RecordError("the header holds no record line", path=shown, stage="read")
+    tokens = lines[0].split()
+    if len(tokens) < 2 or not tokens[1].isdigit():
+        raise RecordError(f"the header's record line {lines[0][:60]!r} is not 'name n_signals "
+                          "[fs [n_samples]]'", path=shown, stage="read")
+    if len(tokens) < 3:
+        warnings.append("the header gives no sampling rate; the WFDB default of 250 Hz is used")
+    try:
+        h = wfdb.rdheader(str(base))
+    except Exception as exc:
+        raise RecordError(f"the header cannot be parsed ({type(exc).__name__}: {exc}); compare it "
+                          "with the WFDB header format", path=shown, stage="read") from None
+    fs = float(h.fs or 0)
+    if len(tokens) >= 3:
+        field = tokens[2].split("/")[0].split("(")[0]
+        try:
+            declared = float(field)
+        except ValueError:
+            declared = float("nan")
+        if not declared == fs:
+            raise RecordError(f"the header's frequency field {tokens[2]!r} is not a plain number "
+                              f"(WFDB reads it as {fs:g} Hz); fix it", path=shown, stage="read")
+    _check_rate(fs, shown)
+    if getattr(h, "n_seg", None):
+        return None  # multi-segment records: wfdb checks their segments itself
+    if h.sig_len is not None and h.sig_len > _MAX_SAMPLES:
+        raise RecordError(f"the header declares {h.sig_len} samples per signal, which is not "
+                          "believable; fix the length field", path=shown, stage="read")
+    if not h.sig_len or not h.file_name:
+        return None
+    frames = []
+    for fn in sorted(set(h.file_name)):
+        idx = [i for i, f in enumerate(h.file_name) if f == fn]
+        fmts = [str(h.fmt[i]) for i in idx]
+        if any(f not in _FMT_BYTES for f in fmts):
+            if any(f not in ("508", "516", "524") for f in fmts):
+                raise RecordError(f"signal format {fmts} of {fn} is not a WFDB format this "
+                                  "reader knows", path=shown, stage="read")
+            continue  # FLAC-compressed: size says nothing
+        path = base.parent / fn
+        if not path.exists():
+            raise RecordError(f"signal file {fn} is missing; restore it or leave the record out",
+                              path=shown, stage="read")
+        offset = max([int(h.byte_offset[i] or 0) for i in idx] if h.byte_offset else [0])
+        per_frame = sum(_FMT_BYTES[f] for f in fmts)
+        frames.append(int((path.stat().st_size - offset) // per_frame))
+    if not frames:
+        return None
+    have = min(frames)
+    if have <= 0:
+        raise RecordError("the signal file holds no samples (zero-length record)", path=shown,
+                          stage="read")
+    if have < h.sig_len:
+        warnings.append(f"header declares {h.sig_len} samples but the signal file holds {have}; "
+                        f"the {have} present are used")
+        return have
+    return None
 
 
 def _read_wfdb_annotations(base: Path, ext: str, n_samples: int) -> Annotations | None:
@@ -193,9 +293,10 @@ def read_csv(path: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | No
         rate = float(rate) if rate else 0.0
     except (TypeError, ValueError):
         rate = 0.0
-    if not np.isfinite(rate) or rate <= 0 or rate > 100_000:
-        raise RecordError("no usable sampling rate; pass --fs or write a sidecar "
+    if not rate:
+        raise RecordError("no sampling rate; pass --fs or write a sidecar "
                           f"{side.name} with {{\"fs\": <Hz>}}", path=shown, stage="read")
+    _check_rate(rate, shown)
     try:
         df = pd.read_csv(path)
     except Exception as exc:

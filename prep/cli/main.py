@@ -2,7 +2,7 @@
 
 Diagnostics and progress go to stderr, results to stdout. Exit codes (README, "Exit codes"):
 0 all records ok; 1 some records failed but a dataset was written; 2 usage or configuration error;
-3 no record could be used.
+3 no record could be used; 4 the dataset could not be written (space, permissions).
 """
 from __future__ import annotations
 
@@ -88,9 +88,13 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
     except ConfigError as exc:
         stop()
         _fail("\n  ".join(exc.problems) if len(exc.problems) > 1 else str(exc))
-    except (BeatmillError, OSError) as exc:
+    except OSError as exc:
         stop()
-        _fail(f"{exc}; the previous state of {out} is unchanged where nothing was renamed yet")
+        _fail(f"cannot write the dataset ({exc.strerror or exc}: {exc.filename or out}); {out} is "
+              "as it was before this run", code=4)
+    except BeatmillError as exc:
+        stop()
+        _fail(str(exc))
     stop()
     typer.echo(f"wrote {summary.out}: {summary.n_records} records "
                f"({summary.n_failed} failed, {summary.n_no_lead} without a usable lead), "
