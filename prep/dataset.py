@@ -1,6 +1,7 @@
 """``run``: read sources, process every record, and write one dataset folder."""
 from __future__ import annotations
 
+import json
 import logging
 import os
 import shutil
@@ -81,7 +82,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         raise ConfigError(problems or ["no input records given"])
     for p in problems:
         log.warning("%s", p)
-    _prepare_out(out, overwrite)
+    _prepare_out(out, overwrite, cfg.sha256(extra))
 
     if cfg.leads.select:
         axis = resolve_axis(cfg.leads.select)
@@ -126,12 +127,23 @@ def _write_in_place(out: Path, a: Assembled) -> None:
     shutil.rmtree(old, ignore_errors=True)
 
 
-def _prepare_out(out: Path, overwrite: bool) -> None:
-    """Refuse, before any work, an output that is in the way; nothing is deleted here."""
+def _prepare_out(out: Path, overwrite: bool, config_hash: str) -> None:
+    """Refuse, before any work, an output that is in the way; nothing is deleted here.
+
+    A dataset folder written with the same configuration hash is processed again in place (the
+    outputs are the same for the same inputs); one with another configuration needs --overwrite.
+    """
     if out.exists() and not out.is_dir():
         raise ConfigError(f"output {out} exists and is not a folder; choose another --out")
     if out.exists() and any(out.iterdir()):
+        previous = _previous_hash(out)
+        if previous == config_hash:
+            return
         if not overwrite:
+            if previous:
+                raise ConfigError(f"output folder {out} holds a dataset made with another "
+                                  f"configuration (hash {previous[:12]}, this run {config_hash[:12]}); "
+                                  "choose a new --out or pass --overwrite to replace it")
             raise ConfigError(f"output folder {out} is not empty; choose a new --out or pass "
                               "--overwrite to replace it")
         if not (out / MANIFEST).exists():
@@ -139,6 +151,13 @@ def _prepare_out(out: Path, overwrite: bool) -> None:
                               "it is not a beatmill dataset; remove it yourself if you mean it")
     if not os.access(out if out.exists() else _existing_parent(out), os.W_OK):
         raise ConfigError(f"cannot write to {out}: permission denied; choose another --out")
+
+
+def _previous_hash(out: Path) -> str | None:
+    try:
+        return json.loads((out / MANIFEST).read_text(encoding="utf-8")).get("config_sha256")
+    except (OSError, ValueError, AttributeError):
+        return None
 
 
 def _existing_parent(p: Path) -> Path:

@@ -98,7 +98,10 @@ def template_corr(beats: np.ndarray, n_template: int, stride: int = 8) -> np.nda
     if n == 0:
         return np.zeros((0, n_l))
     step = max(1, n_s // 64)
-    b = np.ascontiguousarray(beats[:, :, ::step], dtype=np.float32)
+    sub = beats[:, :, ::step]
+    peak = np.abs(sub).max(axis=-1, keepdims=True)
+    # correlation is scale-free: scaling each beat to 1 keeps float32 products from overflowing
+    b = np.ascontiguousarray(sub / np.where(peak > 0, peak, 1.0), dtype=np.float32)
     w = min(n_template, n)
     out = np.empty((n, n_l))
     first = np.clip(np.arange(n) - w // 2, 0, n - w)  # first beat of each beat's template window

@@ -7,6 +7,7 @@ import pandas as pd
 import pytest
 
 from prep.check import check_dataset
+from prep.config import Config
 from prep.dataset import EXIT_NONE_USABLE, EXIT_OK, EXIT_SOME_FAILED, run
 from prep.demo import write_demo
 from prep.evaluate import match_beats
@@ -140,8 +141,13 @@ def test_output_folder_is_not_overwritten_by_accident(demo_run, tmp_path):
     out, _ = demo_run
     target = tmp_path / "exists"
     shutil.copytree(out, target)
+    with pytest.raises(ConfigError, match="another configuration"):
+        run([DEMO / "night01.hea"], target, config=Config().replace(resample={"n_samples": 128}))
+    run([DEMO / "night01.hea"], target)  # same configuration: processed again in place
+    (tmp_path / "plain").mkdir()
+    (tmp_path / "plain" / "x").write_text("x")
     with pytest.raises(ConfigError, match="not empty"):
-        run([DEMO / "night01.hea"], target)
+        run([DEMO / "night01.hea"], tmp_path / "plain")
     other = tmp_path / "other"
     other.mkdir()
     (other / "notes.txt").write_text("mine")
