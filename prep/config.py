@@ -183,8 +183,28 @@ class QualityConfig:
     template_beats: int = _f(31, "Beats in the running median template (odd).",
                              "common practice, no source", lo=3, hi=1001)
     min_usable_fraction: float = _f(0.5, "A lead is rejected for a record when less than this "
-                                    "fraction of it is free of flat and clipped stretches.",
+                                    "share of its windows is usable (not graded unusable).",
                                     "common practice, no source", lo=0.0, hi=1.0)
+    amplitude_z_max: float = _f(10.0, "A beat is excluded (amplitude_outlier) when the robust "
+                                "z-score of its log peak-to-peak amplitude exceeds this; the MAD "
+                                "is floored at 0.1, so the threshold is never tighter than a "
+                                "factor e = 2.7 (ectopic beats of double amplitude stay).",
+                                "common practice, no source", lo=1.0, hi=100.0)
+    min_rr_s: float = _f(0.2, "A beat closer than this to the previous beat is excluded "
+                         "(rr_too_short).", "absolute refractory period ~200 ms (Pan & Tompkins "
+                         "1985 use 200 ms)", lo=0.05, hi=1.0)
+    long_pause_s: float = _f(3.0, "A beat next to an RR longer than this gets the flag long_pause.",
+                             "Orphanidou et al. 2015: longest plausible RR 3 s", lo=0.5, hi=30.0)
+    exclude_long_pause: bool = _f(False, "Exclude beats next to a long pause instead of flagging "
+                                  "them (a true pause is a finding, not noise).", "design choice")
+    exclude_detector_disagreement: bool = _f(True, "Exclude weak beats that neurokit2's detector "
+                                             "does not find within 150 ms in any used lead "
+                                             "(detector_disagreement); strong beats seen in "
+                                             "every lead are only flagged.", "design choice: two "
+                                             "independent detectors agreeing is the bSQI idea "
+                                             "(Li et al. 2008)")
+    exclude_overlapping: bool = _f(False, "Exclude beats whose window holds a neighbour's R "
+                                   "(overlaps_neighbour) instead of flagging them.", "design choice")
 
 
 @dataclass(frozen=True)
@@ -227,11 +247,66 @@ class SplitConfig:
                              factory=list)
 
 
+@dataclass(frozen=True)
+class WindowsConfig:
+    enabled: bool = _f(True, "Grade lead windows and run the second detector. Off: every window "
+                       "counts as good and no beat is checked against the second detector "
+                       "(faster; for comparison).", "design choice")
+    window_s: float = _f(10.0, "Length of the lead-quality windows in s.",
+                         "10 s windows as in Li, Mark & Clifford 2008 and Orphanidou et al. 2015",
+                         lo=2.0, hi=600.0)
+    unusable_fault_fraction: float = _f(0.5, "A window is unusable when more than this share is "
+                                        "flat, clipped or missing.", "common practice, no source",
+                                        lo=0.0, hi=1.0)
+    noisy_fault_fraction: float = _f(0.05, "A window is noisy when more than this share is flat, "
+                                     "clipped or missing.", "common practice, no source",
+                                     lo=0.0, hi=1.0)
+    amplitude_range_mv: list = _f(None, "Plausible range of the window's robust amplitude (99th "
+                                  "minus 1st percentile of the filtered lead), mV; outside: "
+                                  "unusable.", "common practice, no source",
+                                  factory=lambda: [0.05, 10.0])
+    ksqi_min: float = _f(5.0, "kSQI (kurtosis) below this: noisy.",
+                         "Li, Mark & Clifford 2008 (Physiol Meas 29:15), kSQI > 5 for good "
+                         "ECG, from memory", lo=0.0, hi=100.0)
+    psqi_range: list = _f(None, "pSQI (power 5-15 Hz / 5-40 Hz) outside this range: noisy.",
+                          "Li et al. 2008 used 0.5-0.8 for good ECG (from memory); widened here: "
+                          "clean MIT-BIH, svdb and nstdb windows measured 0.50 to 0.93 (5th-95th "
+                          "percentiles, docs/quality.md)", factory=lambda: [0.4, 0.95])
+    bassqi_min: float = _f(0.5, "basSQI (1 - power 0-1 Hz / 0-40 Hz, before baseline removal) "
+                           "below this: noisy.", "Li et al. 2008 / Clifford et al. 2012 use 0.95 "
+                           "(from memory); lowered because wander is removed downstream and clean "
+                           "MIT-BIH 100 and nstdb 118 windows measured 0.58-0.75 at their 5th "
+                           "percentile", lo=0.0, hi=1.0)
+    bsqi_noisy: float = _f(0.8, "bSQI (agreement of our detector with neurokit2's within 150 ms, "
+                           "matched / union) below this: noisy.",
+                           "Li et al. 2008 (bSQI > 0.8 for good ECG, from memory)", lo=0.0, hi=1.0)
+    bsqi_unusable: float = _f(0.5, "bSQI below this: unusable.", "common practice, no source",
+                              lo=0.0, hi=1.0)
+    tsqi_noisy: float = _f(0.66, "Mean correlation of the window's beats with their template "
+                           "below this: noisy.", "Orphanidou et al. 2015 (IEEE JBHI 19:832), 0.66",
+                           lo=-1.0, hi=1.0)
+    tsqi_unusable: float = _f(0.3, "Template correlation below this: unusable.",
+                              "common practice, no source", lo=-1.0, hi=1.0)
+    hr_range_bpm: list = _f(None, "Heart rate outside this range: noisy.",
+                            "Orphanidou et al. 2015: 40-180 bpm", factory=lambda: [40.0, 180.0])
+    max_rr_s: float = _f(3.0, "Longest RR above this: noisy.", "Orphanidou et al. 2015: 3 s",
+                         lo=0.5, hi=30.0)
+    rr_ratio_max: float = _f(2.2, "Longest over shortest RR above this: noisy.",
+                             "Orphanidou et al. 2015: 2.2", lo=1.0, hi=20.0)
+    line_ratio_max: float = _f(0.1, "Share of power within 1 Hz of the mains frequency and its "
+                               "harmonics, after the notch, above this: noisy.",
+                               "common practice, no source", lo=0.0, hi=1.0)
+    hf_ratio_max: float = _f(0.2, "Share of power above 40 Hz (muscle) above this: noisy.",
+                             "common practice, no source", lo=0.0, hi=1.0)
+    exclude_noisy: bool = _f(False, "Exclude beats in noisy windows (reason noisy_window) instead "
+                             "of keeping them with the flag noisy_window.", "design choice")
+
+
 SECTIONS: dict[str, type] = {
     "read": ReadConfig, "leads": LeadsConfig, "powerline": PowerlineConfig,
     "bandpass": BandpassConfig, "baseline": BaselineConfig, "rpeaks": RpeaksConfig,
     "segment": SegmentConfig, "resample": ResampleConfig, "normalize": NormalizeConfig,
-    "quality": QualityConfig, "labels": LabelsConfig, "split": SplitConfig,
+    "quality": QualityConfig, "windows": WindowsConfig, "labels": LabelsConfig, "split": SplitConfig,
 }
 
 
@@ -249,6 +324,7 @@ class Config:
     resample: ResampleConfig = field(default_factory=ResampleConfig)
     normalize: NormalizeConfig = field(default_factory=NormalizeConfig)
     quality: QualityConfig = field(default_factory=QualityConfig)
+    windows: WindowsConfig = field(default_factory=WindowsConfig)
     labels: LabelsConfig = field(default_factory=LabelsConfig)
     split: SplitConfig = field(default_factory=SplitConfig)
 
@@ -439,6 +515,11 @@ def _check_field(origin: str, section: str, f: dataclasses.Field, value: Any) ->
                    or not 1.0 <= v <= 1000.0]
             if bad:
                 return [f"{where} must list frequencies between 1 and 1000 Hz. Got {bad!r}."]
+        if f.name in ("amplitude_range_mv", "psqi_range", "hr_range_bpm"):
+            if len(value) != 2 or any(isinstance(v, bool) or not isinstance(v, (int, float))
+                                      for v in value) or not 0 <= value[0] < value[1]:
+                return [f"{where} must be [low, high] with 0 <= low < high. Got {value!r} instead."]
+            return []
         if f.name == "ratios":
             if len(value) != 3 or any(isinstance(v, bool) or not isinstance(v, (int, float))
                                       or v < 0 for v in value) or sum(value) <= 0:

@@ -184,6 +184,7 @@ class Assembled:
     table: pd.DataFrame        # beats.parquet
     leads: pd.DataFrame        # leads.parquet
     records: pd.DataFrame      # records.parquet
+    windows: pd.DataFrame      # windows.parquet
     manifest: dict             # manifest.json without the file checksums
     exit_code: int
 
@@ -317,8 +318,12 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     usable = len(results) - n_failed - n_nolead
     code = (EXIT_NONE_USABLE if usable == 0 else EXIT_SOME_FAILED if usable < len(results)
             else EXIT_OK)
+    wins = [r.windows for r in results if r.windows is not None]
+    windows = (pd.concat(wins, ignore_index=True) if wins else
+               pd.DataFrame({c: pd.Series(dtype="float64") for c in
+                             ["record", "lead", "start", "end", "grade", "decided_by"]}))
     return Assembled(tensor.astype(np.float32), mask.astype(bool), center.astype(np.float32),
-                     scale.astype(np.float32), beats, leads, records, manifest, code)
+                     scale.astype(np.float32), beats, leads, records, windows, manifest, code)
 
 
 def write_assembled(out: Path, a: Assembled) -> None:
@@ -330,6 +335,7 @@ def write_assembled(out: Path, a: Assembled) -> None:
     write_parquet(out / "beats.parquet", a.table)
     write_parquet(out / "leads.parquet", a.leads)
     write_parquet(out / "records.parquet", a.records)
+    write_parquet(out / "windows.parquet", a.windows)
     manifest = {**a.manifest,
                 "files": {f: sha256_path(out / f) for f in TENSOR_FILES + TABLE_FILES}}
     write_manifest(out / MANIFEST, manifest)

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 TENSOR_FILES = ("beats.npy", "lead_mask.npy", "norm_center.npy", "norm_scale.npy")
-TABLE_FILES = ("beats.parquet", "leads.parquet", "records.parquet")
+TABLE_FILES = ("beats.parquet", "leads.parquet", "records.parquet", "windows.parquet")
 MANIFEST = "manifest.json"
 
 

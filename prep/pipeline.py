@@ -26,14 +26,16 @@ from .read import BEAT_SYMBOLS
 from .powerline import remove_powerline
 from .quality import hf_ratio, high_freq, lead_faults, template_corr, window_fraction
 from .resample import cut_and_resample
-from .rpeaks import detect_beats
+from .rpeaks import detect_leads, fuse_leads
+from .windows import grade_codes, lead_windows
 from .segment import beat_windows
 
 log = logging.getLogger("prep")
 
 BEAT_COLUMNS = ["beat_id", "record", "r_sample", "r_time_s", "rr_prev_s", "rr_next_s", "included",
                 "reasons", "tensor_index", "flags", "label", "class", "rhythm", "detect_conf", "n_leads_seen",
-                "template_corr", "hf_ratio", "bad_fraction"]
+                "template_corr", "hf_ratio", "bad_fraction", "amplitude_z", "window_grade",
+                "second_detector"]
 
 
 @dataclass
@@ -54,6 +56,7 @@ class RecordResult:
     logs: list[StageLog] = field(default_factory=list)
     comments: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    windows: pd.DataFrame | None = None        # one row per lead and quality window
 
     @property
     def n_beats(self) -> int:
@@ -81,7 +84,7 @@ def _empty_beats() -> pd.DataFrame:
     return pd.DataFrame({c: pd.Series(dtype=t) for c, t in zip(
         BEAT_COLUMNS, ["str", "str", "int64", "float64", "float64", "float64", "bool", "str",
                        "int64", "str", "str", "str", "str", "float64", "int64", "float64",
-                       "float64", "float64"])})
+                       "float64", "float64", "float64", "str", "bool"])})
 
 
 def process_record(rec: Record, cfg: Config, axis: list[str],
@@ -92,7 +95,8 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     """
     fs = rec.fs
     n_ax = len(axis)
-    res = RecordResult(rec.name, "ok", fs=fs, duration_s=rec.duration_s, n_leads=len(rec.leads),
+    n_l = len(rec.leads)
+    res = RecordResult(rec.name, "ok", fs=fs, duration_s=rec.duration_s, n_leads=n_l,
                        inputs=rec.inputs, comments=list(rec.comments),
                        warnings=list(rec.warnings))
     min_len = int(round((cfg.segment.before_ms + cfg.segment.after_ms) * fs / 1000))
@@ -104,43 +108,67 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     res.logs.append(StageLog("gaps", counts={"missing_samples": int(gap.sum())}))
 
     # lead faults on the raw signal, before any filter smears them
-    bad, fault = lead_faults(raw, fs, cfg.quality, gap)
+    bad, masks, fault = lead_faults(raw, fs, cfg.quality, gap)
     usable = np.array([f["usable_fraction"] >= cfg.quality.min_usable_fraction for f in fault])
     lead_reason = ["" if u else _fault_reason(f) for u, f in zip(usable, fault)]
 
     y, lg = remove_powerline(raw, fs, cfg.powerline)
     res.logs.append(lg)
+    mains = lg.derived.get("mains_hz")
     notched = y
     y, lg = bandpass(y, fs, cfg.bandpass)
     res.logs.append(lg)
     y, lg = remove_baseline(y, fs, cfg.baseline)
     res.logs.append(lg)
 
+    # per-lead detection, a second detector, and window grades
+    dets = {d.lead: d for d in detect_leads(y, fs, usable, cfg.rpeaks)}
+    other = {j: second_detector(y[j], fs) for j in dets} if cfg.windows.enabled else {}
+    empty = np.zeros(0, np.int64)
+    win_tables, grades = [], {}
+    for j in range(n_l):
+        w = lead_windows(notched[j], y[j], masks[j], fs, dets[j].r if j in dets else empty,
+                         other.get(j, empty), mains, cfg.windows, grade=cfg.windows.enabled)
+        grades[j] = grade_codes(w["grade"])
+        w.insert(0, "lead", rec.leads[j])
+        w.insert(0, "record", rec.name)
+        win_tables.append(w)
+    res.windows = pd.concat(win_tables, ignore_index=True)
+    L = int(round(cfg.windows.window_s * fs))
+    for j in list(dets):
+        share = float((grades[j] < 2).mean())
+        if dets[j].r.size == 0:
+            usable[j] = False
+            lead_reason[j] = "no beats found in this lead"
+        elif share < cfg.quality.min_usable_fraction:
+            usable[j] = False
+            top = _main_fault(res.windows[(res.windows.lead == rec.leads[j])])
+            lead_reason[j] = f"only {share:.0%} of its windows usable; mostly {top}"
     res.logs.append(StageLog("lead_faults", params={"flat_ms": cfg.quality.flat_ms,
                                                     "clip_run_samples": cfg.quality.clip_run_samples,
                                                     "min_usable_fraction":
                                                         cfg.quality.min_usable_fraction},
                              derived={rec.leads[j]: {**fault[j], "rejected": lead_reason[j]}
-                                      for j in range(len(rec.leads))}))
-    fused, lg = detect_beats(y, fs, usable, cfg.rpeaks, names=rec.leads)
+                                      for j in range(n_l)}))
+    res.logs.append(StageLog("windows", params={k: getattr(cfg.windows, k)
+                                                for k in cfg.windows.__dataclass_fields__},
+                             derived={"window_samples": L, "second_detector":
+                                      "neurokit2.ecg_findpeaks(method='neurokit')"},
+                             counts={g: int((res.windows.grade == g).sum())
+                                     for g in ("good", "noisy", "unusable")}))
+    use_dets = [dets[j] for j in sorted(dets) if usable[j]]
+    valid = [grades[d.lead][np.minimum(d.r // L, grades[d.lead].size - 1)] < 2 for d in use_dets]
+    fused, lg = fuse_leads(use_dets, n_l, fs, cfg.rpeaks, rec.leads, valid)
     res.logs.append(lg)
-    for j in np.flatnonzero(usable):
-        if fused.support[:, j].sum() == 0:
-            usable[j] = False
-            lead_reason[j] = "no beats found in this lead"
-    res.leads = [{"record": rec.name, "lead": rec.leads[j], "source_name": rec.lead_names[j],
-                  "used": bool(usable[j]), "reason": lead_reason[j],
-                  "in_axis": match_lead(rec.leads[j], axis) is not None, **fault[j]}
-                 for j in range(len(rec.leads))]
+    res.leads = [_lead_row(rec, j, usable[j], lead_reason[j], axis, fault[j],
+                           res.windows[res.windows.lead == rec.leads[j]]) for j in range(n_l)]
     for name, why in rec.skipped:
         res.leads.append({"record": rec.name, "lead": name, "source_name": name, "used": False,
-                          "reason": why, "in_axis": False, "flat_fraction": float("nan"),
-                          "clipped_fraction": float("nan"), "missing_fraction": float("nan"),
-                          "usable_fraction": float("nan")})
+                          "reason": why, "in_axis": False})
     if not usable.any():
         res.status = "no_usable_lead"
         res.error = "no usable ECG lead: " + "; ".join(
-            f"{rec.leads[j]}: {lead_reason[j]}" for j in range(len(rec.leads)))
+            f"{rec.leads[j]}: {lead_reason[j]}" for j in range(n_l))
         res.beats = _empty_beats()
         res.tensor = np.zeros((0, n_ax, cfg.resample.n_samples))
         res.mask = np.zeros((0, n_ax), bool)
@@ -153,7 +181,8 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
 
     r = fused.r
     n = r.size
-    reasons: list[list[str]] = [[] if a else ["one_lead_only"] for a in fused.accepted]
+    reasons: list[list[str]] = [[] if a else (["unusable_window"] if u else ["one_lead_only"])
+                                for a, u in zip(fused.accepted, fused.unusable)]
     acc = np.flatnonzero(fused.accepted)
     ra = r[acc]
     used_gap = gap[usable].any(axis=0)
@@ -169,50 +198,33 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
             reasons[i].append("lead_missing")
 
     # cut every beat with a valid window (the quality scores need them), for the axis leads
-    valid = np.array([not why[k] for k in range(acc.size)], bool)
-    vi = acc[valid]
-    sig_ax = y[rows_src]
-    beats_mv, lg = cut_and_resample(sig_ax, start[valid], end[valid], cfg.resample.n_samples, fs)
+    valid_w = np.array([not why[k] for k in range(acc.size)], bool)
+    vi = acc[valid_w]
+    sv, ev = start[valid_w], end[valid_w]
+    beats_mv, lg = cut_and_resample(y[rows_src], sv, ev, cfg.resample.n_samples, fs)
     res.logs.append(lg)
-    beats_mv[:, ~slot_ok, :] = 0.0
+    # per beat and axis slot: the window grade of that lead at R; unusable slots are masked
+    g_slot = np.full((vi.size, n_ax), 2, np.int8)
+    for k, src in enumerate(rows_src):
+        if slot_ok[k]:
+            g = grades[src]
+            g_slot[:, k] = g[np.minimum(r[vi] // L, g.size - 1)]
+    beat_mask = slot_ok[None, :] & (g_slot < 2)
+    # leads the reference annotator marked noisy/unreadable at a beat are masked for that beat
+    all_noisy = np.zeros(vi.size, bool)
+    if cfg.labels.exclude_annotated_noise and rec.annotations is not None and vi.size:
+        channels = rec.channels or list(range(n_l))
+        noisy_ann = noise_stretches(rec.annotations, rec.n_samples, channels)
+        if noisy_ann.any():
+            ann = (window_fraction(noisy_ann[rows_src], sv, ev) > 0) & beat_mask
+            all_noisy = beat_mask.any(axis=1) & ~(beat_mask & ~ann).any(axis=1)
+            beat_mask &= ~ann
+    beats_mv[~beat_mask] = 0.0
 
-    # quality scores on the used axis leads
-    q = cfg.quality
-    hf, cut = high_freq(notched[rows_src], fs)
-    use = np.flatnonzero(slot_ok)
-    tc = np.full(n, np.nan)
-    hfr = np.full(n, np.nan)
-    badf = np.full(n, np.nan)
-    if vi.size and use.size:
-        tc_all = template_corr(beats_mv[:, use], q.template_beats)
-        tc[vi] = np.median(tc_all, axis=1)
-        hfr[vi] = np.median(hf_ratio(hf[use], beats_mv[:, use], start[valid], end[valid]), axis=1)
-        badf[vi] = window_fraction(bad[[rows_src[j] for j in use]], start[valid],
-                                   end[valid]).max(axis=1)
+    scores = _beat_scores(r, vi, sv, ev, beats_mv, beat_mask, rows_src, notched, bad, fs, cfg,
+                          other, usable, ra, fused.support.sum(axis=1), fused.confidence)
     flags: list[list[str]] = [[] for _ in range(n)]
-    if cfg.labels.exclude_annotated_noise and rec.annotations is not None:
-        channels = rec.channels or list(range(len(rec.leads)))
-        noisy = noise_stretches(rec.annotations, rec.n_samples, channels)
-        used_ax = [rows_src[j] for j in use]
-        if used_ax and noisy[used_ax].any():
-            hit = window_fraction(noisy[used_ax], start[valid], end[valid]).max(axis=1) > 0
-            for i in vi[hit]:
-                reasons[i].append("annotated_noise")
-    for i in vi:
-        if badf[i] > q.max_bad_fraction_in_beat:
-            reasons[i].append("flat_or_clipped")
-        if hfr[i] > q.max_hf_ratio:
-            reasons[i].append("high_freq_noise")
-        if tc[i] < q.exclude_template_corr:
-            reasons[i].append("unlike_neighbours")
-        elif tc[i] < q.flag_template_corr:
-            flags[i].append("unlike_neighbours")
-        if not slot_ok.all():
-            flags[i].append("partial_leads")
-    res.logs.append(StageLog("quality", params={k: getattr(q, k) for k in q.__dataclass_fields__},
-                             derived={"high_freq_cut_hz": cut},
-                             counts={c: sum(c in x for x in reasons) for c in
-                                     ("flat_or_clipped", "high_freq_noise", "unlike_neighbours")}))
+    _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, res, all_noisy)
 
     included = np.array([not x for x in reasons], bool)
     tensor_index = np.full(n, -1, np.int64)
@@ -220,7 +232,7 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     pos_in_valid = np.full(n, -1, np.int64)
     pos_in_valid[vi] = np.arange(vi.size)
     res.tensor = beats_mv[pos_in_valid[included]]
-    res.mask = np.broadcast_to(slot_ok, (res.tensor.shape[0], n_ax)).copy()
+    res.mask = beat_mask[pos_in_valid[included]]
 
     rr_prev, rr_next = _rr(r, ra, fs)
     labels = attach_labels(r, rec.annotations, fs, cfg.labels.window_ms)
@@ -240,11 +252,156 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
         "reasons": [R.join(x) for x in reasons], "tensor_index": tensor_index,
         "flags": [R.join(x) if inc else "" for x, inc in zip(flags, included)],
         "label": labels.astype(str), "class": beat_classes(labels, mapping).astype(str),
-        "rhythm": rhythm_at(r, rec.annotations).astype(str), "detect_conf": np.round(fused.confidence, 6),
+        "rhythm": rhythm_at(r, rec.annotations).astype(str),
+        "detect_conf": np.round(fused.confidence, 6),
         "n_leads_seen": fused.support.sum(axis=1).astype(np.int64),
-        "template_corr": np.round(tc, 6), "hf_ratio": np.round(hfr, 6),
-        "bad_fraction": np.round(badf, 6)})
+        **{k: (np.round(v, 6) if v.dtype.kind == "f" else v) for k, v in scores.items()}})
     return res
+
+
+def _lead_row(rec: Record, j: int, used: bool, reason: str, axis: list[str], fault: dict,
+              w: pd.DataFrame) -> dict:
+    counts = w["grade"].value_counts()
+    return {"record": rec.name, "lead": rec.leads[j], "source_name": rec.lead_names[j],
+            "used": bool(used), "reason": reason,
+            "in_axis": match_lead(rec.leads[j], axis) is not None, **fault,
+            "windows_good": int(counts.get("good", 0)), "windows_noisy": int(counts.get("noisy", 0)),
+            "windows_unusable": int(counts.get("unusable", 0)),
+            "usable_share": float((w["grade"] != "unusable").mean()) if len(w) else 0.0,
+            "main_fault": _main_fault(w)}
+
+
+def _main_fault(w: pd.DataFrame) -> str:
+    """The index that most often decided a non-good window of a lead ('' when all good)."""
+    parts = [p for cell in w.loc[w["grade"] != "good", "decided_by"] for p in cell.split(";") if p]
+    return max(sorted(set(parts)), key=parts.count) if parts else ""
+
+
+def second_detector(x: np.ndarray, fs: float) -> np.ndarray:
+    """R peaks from neurokit2's own detector on the filtered lead (for bSQI and agreement)."""
+    import warnings
+
+    import neurokit2 as nk
+    # the lead is already band-limited to 40 Hz, so keeping every q-th sample down to >= 90 Hz
+    # does not alias it; the peer detector then runs q times faster (R within +-q samples)
+    q = max(1, int(fs // 90))
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            p = nk.ecg_findpeaks(x[::q], sampling_rate=int(round(fs / q)),
+                                 method="neurokit")["ECG_R_Peaks"]
+        return np.sort(np.asarray(p, dtype=np.int64) * q)
+    except Exception:  # a failing peer detector means no agreement, recorded as such
+        return np.zeros(0, np.int64)
+
+
+def _beat_scores(r, vi, sv, ev, beats_mv, beat_mask, rows_src, notched, bad, fs, cfg, other,
+                 usable, ra, support_count, confidence) -> dict[str, np.ndarray]:
+    """Per-beat scores for every row (NaN where the beat has no window)."""
+    n = r.size
+    q = cfg.quality
+    out = {k: np.full(n, np.nan) for k in ("template_corr", "hf_ratio", "bad_fraction",
+                                           "amplitude_z")}
+    out["window_grade"] = np.full(n, "", dtype=object)
+    # the second detector: any used lead's neurokit2 peak within 150 ms
+    tol = 0.15 * fs
+    agree = np.zeros(n, bool) if cfg.windows.enabled else np.ones(n, bool)
+    for j, p in other.items():
+        if usable[j] and p.size:
+            k = np.clip(np.searchsorted(p, r), 1, p.size - 1) if p.size > 1 else np.zeros(n, int)
+            d = np.minimum(np.abs(p[np.maximum(k - 1, 0)] - r), np.abs(p[k] - r))
+            agree |= d <= tol
+    out["second_detector"] = agree
+    n_used = int(usable.sum())
+    out["_weak"] = (support_count < n_used) | (confidence < 1.0)
+    out["_rr_prev"], out["_rr_next"] = _rr(r, ra, fs)
+    # another accepted R inside the beat's window (its own R excluded)
+    lo = np.searchsorted(ra, sv, side="left")
+    hi = np.searchsorted(ra, ev, side="left")
+    out["_overlap"] = (hi - lo) > 1  # aligned with the cut beats (vi)
+    if vi.size == 0:
+        return out
+    hf, _ = high_freq(notched[rows_src], fs)
+    any_lead = beat_mask.any(axis=1)
+    tc = template_corr(beats_mv, q.template_beats)            # (n_v, n_ax)
+    hfr = hf_ratio(hf, beats_mv, sv, ev)
+    badf = window_fraction(bad[rows_src], sv, ev)
+    out["template_corr"][vi] = _masked_median(tc, beat_mask)
+    out["hf_ratio"][vi] = _masked_median(hfr, beat_mask)
+    out["bad_fraction"][vi] = np.where(any_lead, np.max(np.where(beat_mask, badf, 0.0), axis=1),
+                                       np.nan)
+    ptp = beats_mv.max(axis=2) - beats_mv.min(axis=2)
+    amp = _masked_median(ptp, beat_mask)
+    la = np.log(np.maximum(amp, 1e-6))
+    ok = np.isfinite(la)
+    if ok.sum() >= 3:
+        med = np.median(la[ok])
+        mad = 1.4826 * np.median(np.abs(la[ok] - med))
+        out["amplitude_z"][vi] = np.abs(la - med) / max(mad, 0.1)
+    return out
+
+
+def _masked_median(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    w = np.where(mask, v, np.nan)
+    ok = mask.any(axis=1)
+    out = np.full(v.shape[0], np.nan)
+    if ok.any():
+        out[ok] = np.nanmedian(w[ok], axis=1)
+    return out
+
+
+def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, res,
+                  all_noisy) -> None:
+    """Turn scores and window grades into reason codes and flags (in place)."""
+    q, wq = cfg.quality, cfg.windows
+    for i in vi[all_noisy]:
+        reasons[i].append("annotated_noise")
+    n_ax = beat_mask.shape[1]
+    has = beat_mask.any(axis=1)
+    noisy_w = ((g_slot == 1) & beat_mask).any(axis=1) & has
+    tc = scores["template_corr"][vi]
+    # a disagreement excludes only a weakly supported beat: one that some used lead missed, or
+    # whose envelope is below a typical beat's; a strong beat seen in every lead (a wide ectopic
+    # beat the peer detector misses) is kept with a flag
+    weak = scores.pop("_weak")[vi]
+    checks = [
+        (~has & slot_ok.any() & ~all_noisy, reasons, "unusable_window"),
+        (noisy_w, reasons if wq.exclude_noisy else flags, "noisy_window"),
+        (has & (scores["bad_fraction"][vi] > q.max_bad_fraction_in_beat), reasons,
+         "flat_or_clipped"),
+        (has & (scores["hf_ratio"][vi] > q.max_hf_ratio), reasons, "high_freq_noise"),
+        (has & (tc < q.exclude_template_corr), reasons, "unlike_neighbours"),
+        (has & (tc >= q.exclude_template_corr) & (tc < q.flag_template_corr), flags,
+         "unlike_neighbours"),
+        (has & (scores["amplitude_z"][vi] > q.amplitude_z_max), reasons, "amplitude_outlier"),
+        (has & ~scores["second_detector"][vi] & weak & q.exclude_detector_disagreement, reasons,
+         "detector_disagreement"),
+        (has & ~scores["second_detector"][vi] & ~(weak & q.exclude_detector_disagreement), flags,
+         "detector_disagreement"),
+        (has & (beat_mask.sum(axis=1) < n_ax), flags, "partial_leads"),
+    ]
+    for hit, target, code in checks:  # one step per rule, not per beat
+        for i in vi[np.flatnonzero(hit)]:
+            target[i].append(code)
+    # window grade of each cut beat: the worst among the leads it keeps
+    names = np.array(["good", "noisy", "unusable"], dtype=object)
+    worst = np.where(beat_mask, g_slot, -1).max(axis=1)
+    scores["window_grade"][vi] = np.where(worst >= 0, names[np.clip(worst, 0, 2)], "unusable")
+    # rhythm: refractory, pauses, overlapping neighbours (over fusion-accepted beats)
+    rr_p, rr_n = scores.pop("_rr_prev")[vi], scores.pop("_rr_next")[vi]
+    overlap = scores.pop("_overlap")
+    pause = np.maximum(np.nan_to_num(rr_p), np.nan_to_num(rr_n)) > q.long_pause_s
+    for hit, target, code in ((rr_p < q.min_rr_s, reasons, "rr_too_short"),
+                              (pause, reasons if q.exclude_long_pause else flags, "long_pause"),
+                              (overlap, reasons if q.exclude_overlapping else flags,
+                               "overlaps_neighbour")):
+        for i in vi[np.flatnonzero(hit)]:
+            target[i].append(code)
+    res.logs.append(StageLog("quality", params={k: getattr(q, k) for k in q.__dataclass_fields__},
+                             counts={c: sum(c in x for x in reasons) for c in
+                                     ("flat_or_clipped", "high_freq_noise", "unlike_neighbours",
+                                      "amplitude_outlier", "detector_disagreement",
+                                      "unusable_window", "annotated_noise", "rr_too_short")}))
 
 
 def _rr(r: np.ndarray, accepted: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray]:

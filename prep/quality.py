@@ -50,19 +50,24 @@ def clip_mask(x: np.ndarray, run: int) -> np.ndarray:
 def lead_faults(raw: np.ndarray, fs: float, cfg: QualityConfig, gap: np.ndarray):
     """Per-lead fault masks and summary. ``raw``: (n_leads, n_samples), gaps already filled.
 
-    Returns ``bad`` (n_leads, n_samples) True where flat, clipped or missing, and one dict per lead
-    with the fractions.
+    Returns ``bad`` (n_leads, n_samples) True where flat, clipped or missing, the separate masks
+    per lead (``{"flat", "clipped", "missing"}``), and one dict per lead with the fractions.
     """
     bad = np.zeros(raw.shape, bool)
-    summary = []
+    summary, masks = [], []
     for j in range(raw.shape[0]):
-        fl = flat_mask(raw[j], fs, cfg.flat_ms)
-        cl = clip_mask(raw[j], cfg.clip_run_samples) & ~fl
-        bad[j] = fl | cl | gap[j]
-        summary.append({"flat_fraction": float(fl.mean()), "clipped_fraction": float(cl.mean()),
-                        "missing_fraction": float(gap[j].mean()),
+        gj = gap[j]
+        fl = flat_mask(np.where(gj, np.nan, raw[j]), fs, cfg.flat_ms) & ~gj
+        cl = clip_mask(raw[j][~gj], cfg.clip_run_samples) if (~gj).any() else np.zeros(0, bool)
+        clipped = np.zeros(raw.shape[1], bool)
+        clipped[~gj] = cl
+        clipped &= ~fl
+        bad[j] = fl | clipped | gj
+        masks.append({"flat": fl, "clipped": clipped, "missing": gj})
+        summary.append({"flat_fraction": float(fl.mean()), "clipped_fraction": float(clipped.mean()),
+                        "missing_fraction": float(gj.mean()),
                         "usable_fraction": float(1 - bad[j].mean())})
-    return bad, summary
+    return bad, masks, summary
 
 
 def window_fraction(mask: np.ndarray, start: np.ndarray, end: np.ndarray) -> np.ndarray:

@@ -8,6 +8,10 @@ REASONS: dict[str, tuple[str, str]] = {
     # code: (stage that sets it, explanation)
     "one_lead_only": ("rpeaks", "seen by a minority of the used leads, none of them locally "
                                 "trusted at that time (docs/rpeaks.md, fusion)"),
+    "unusable_window": ("windows", "every used lead is graded unusable at this beat (or the beat was "
+                                   "seen only in unusable stretches)"),
+    "noisy_window": ("windows", "a used lead is graded noisy at this beat and windows.exclude_noisy "
+                                "is on"),
     "off_edge": ("segment", "the beat window runs past the start or end of the record"),
     "in_gap": ("segment", "the beat window overlaps missing samples (a gap)"),
     "no_rr": ("segment", "mode 'rr' needs both neighbouring beats, and one is missing"),
@@ -22,6 +26,16 @@ REASONS: dict[str, tuple[str, str]] = {
     "not_train_class": ("split", "a training patient's beat whose class is not in "
                                  "labels.train_classes (never moved to another split)"),
     "not_in_split_lists": ("split", "fixed split lists are given and the beat's patient is in none"),
+    "amplitude_outlier": ("quality", "robust z-score of the log peak-to-peak amplitude above "
+                                     "quality.amplitude_z_max"),
+    "detector_disagreement": ("quality", "neurokit2's detector finds no beat within 150 ms in any "
+                                         "used lead, and the beat is weak (missed by a used lead, "
+                                         "or below a typical beat's envelope)"),
+    "rr_too_short": ("quality", "closer than quality.min_rr_s to the previous beat (refractory)"),
+    "long_pause": ("quality", "next to an RR longer than quality.long_pause_s and "
+                              "quality.exclude_long_pause is on"),
+    "overlaps_neighbour": ("quality", "the window holds a neighbour's R and "
+                                      "quality.exclude_overlapping is on"),
     "lead_missing": ("segment", "a lead of the axis is missing or rejected and "
                                 "leads.drop_incomplete_beats is on"),
 }
@@ -29,7 +43,13 @@ REASONS: dict[str, tuple[str, str]] = {
 FLAGS: dict[str, str] = {
     "unlike_neighbours": "kept, but correlation with the running median beat is below "
                          "quality.flag_template_corr (often an ectopic beat)",
-    "partial_leads": "kept with some leads zero-filled (lead_mask False)",
+    "partial_leads": "kept with some leads zero-filled (lead_mask False: missing, rejected or "
+                     "unusable there)",
+    "noisy_window": "a used lead is graded noisy at this beat",
+    "detector_disagreement": "neurokit2's detector misses this beat, but every used lead saw it "
+                             "with a typical or stronger envelope (often a wide ectopic beat)",
+    "long_pause": "next to an RR longer than quality.long_pause_s",
+    "overlaps_neighbour": "the window holds a neighbour's R (fast rhythm or a close ectopic beat)",
 }
 
 

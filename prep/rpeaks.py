@@ -198,16 +198,22 @@ class Fused:
     confidence: np.ndarray
     accepted: np.ndarray
     r_lead: np.ndarray
+    unusable: np.ndarray | None = None  # seen only in unusable stretches
 
 
 def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarray], fs: float,
-         cfg: RpeaksConfig = RpeaksConfig(), window_s: float = _QUALITY_WINDOW_S) -> Fused:
+         cfg: RpeaksConfig = RpeaksConfig(), window_s: float = _QUALITY_WINDOW_S,
+         valid: list[np.ndarray] | None = None) -> Fused:
     """Fuse per-lead detections (refined R positions) of the usable leads into one beat list.
 
     A beat seen by a strict majority of the leads is accepted. A beat seen by fewer is accepted
     only when a lead that saw it is locally trusted: the primary lead (best median window quality)
     where its window quality reaches ``min_lead_template_corr``, or another lead where it reaches
     that and the primary does not. Rejected beats keep their row (reason ``one_lead_only``).
+
+    ``valid`` (one bool array per lead, per detection): detections in unusable stretches. They
+    still form beats, but give no support; a beat with no valid support is not accepted and is
+    marked ``unusable``.
     """
     n_leads = len(peaks)
     if n_leads == 0 or sum(p.size for p in peaks) == 0:
@@ -221,8 +227,11 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     pos_all = np.concatenate([peaks[j] for j in order])
     lead_all = np.concatenate([np.full(peaks[j].size, j) for j in order])
     conf_all = np.concatenate([conf[j] for j in order])
+    valid_all = (np.concatenate([valid[j] for j in order]) if valid is not None
+                 else np.ones(pos_all.size, bool))
     srt = np.argsort(pos_all, kind="stable")
     pos_s, lead_s, conf_s = pos_all[srt], lead_all[srt], conf_all[srt]
+    valid_s = valid_all[srt]
     new = np.r_[True, np.diff(pos_s) > tol]
     cid = np.cumsum(new) - 1
     # a cluster that holds two detections of one lead is split at the gap between them
@@ -231,8 +240,10 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
         new = new | dup
         cid = np.cumsum(new) - 1
     n_c = int(cid[-1]) + 1
+    seen = np.zeros((n_c, n_leads), bool)
+    seen[cid, lead_s] = True
     support = np.zeros((n_c, n_leads), bool)
-    support[cid, lead_s] = True
+    support[cid[valid_s], lead_s[valid_s]] = True
     best = np.zeros(n_c)
     np.maximum.at(best, cid, conf_s)
     # the R of a cluster: from the primary lead if it saw the beat, else the first lead in order
@@ -252,7 +263,7 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     others = [j for j in range(n_leads) if j != primary]
     if others:
         trusted[:, others] = good[:, others] & ~good[:, [primary]]
-    accepted = (2 * n_sup > n_leads) | (support & trusted).any(1)
+    accepted = ((2 * n_sup > n_leads) | (support & trusted).any(1)) & (n_sup > 0)
     # two accepted beats closer than the refractory period are one beat seen at two places
     # (leads disagree on where R is): keep the better supported one, then the primary's
     dist = int(round(cfg.min_rr_ms * fs / 1000))
@@ -266,7 +277,68 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
         wb = n_sup[b_] * 2 + support[b_, primary]
         drop = np.where(wa > wb, b_, np.where(wb > wa, a_, np.where(best[a_] >= best[b_], b_, a_)))
         accepted[drop] = False
-    return Fused(r.astype(np.int64), support, best, accepted, r_lead.astype(np.int64))
+    return Fused(r.astype(np.int64), seen, best, accepted, r_lead.astype(np.int64),
+                 unusable=n_sup == 0)
+
+
+@dataclass
+class LeadDetections:
+    """One lead's detections: refined R, confidence, the 5-20 Hz band and window quality."""
+
+    lead: int
+    r: np.ndarray
+    conf: np.ndarray
+    band: np.ndarray
+    quality: np.ndarray
+    polarity: int
+
+
+def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig = RpeaksConfig()
+                 ) -> list[LeadDetections]:
+    """Detect and refine beats in every usable lead of ``x`` (n_leads, n_samples)."""
+    x = as_signal(x, fs, "detect_leads", min_samples=8)
+    out = []
+    dist = max(1, int(round(cfg.min_rr_ms * fs / 1000)))
+    for j in np.flatnonzero(usable):
+        p, c, band = detect_lead(x[j], fs, cfg)
+        r, pol = refine_r(x[j], p, fs, cfg.refine_window_ms)
+        # refinement can bring two peaks together; keep the more confident one
+        keep = _sparse_refractory(r, c + 1e-9, dist)
+        sel = np.isin(r, keep)
+        r, c = r[sel], c[sel]
+        _, first = np.unique(r, return_index=True)
+        r, c = r[first], c[first]
+        out.append(LeadDetections(int(j), r, c, band, window_template_quality(band, r, fs), pol))
+    return out
+
+
+def fuse_leads(dets: list[LeadDetections], n_leads: int, fs: float,
+               cfg: RpeaksConfig = RpeaksConfig(), names: list[str] | None = None,
+               valid: list[np.ndarray] | None = None):
+    """Fuse :func:`detect_leads` results; returns (:class:`Fused` over all leads, StageLog)."""
+    names = names or [str(j) for j in range(n_leads)]
+    idx = np.array([d.lead for d in dets], dtype=np.int64)
+    log = StageLog("rpeaks", params={k: getattr(cfg, k) for k in cfg.__dataclass_fields__})
+    for d in dets:
+        log.counts[f"detections_{names[d.lead]}"] = int(d.r.size)
+    fused = fuse([d.r for d in dets], [d.conf for d in dets], [d.quality for d in dets], fs, cfg,
+                 valid=valid)
+    full = np.zeros((fused.r.size, n_leads), bool)
+    if idx.size:
+        full[:, idx] = fused.support
+    lead_of = idx[fused.r_lead] if fused.r.size else fused.r_lead
+    unusable = fused.unusable if fused.unusable is not None else np.zeros(fused.r.size, bool)
+    fused = Fused(fused.r, full, fused.confidence, fused.accepted, lead_of, unusable)
+    primary = _primary([d.quality for d in dets])
+    log.derived["polarity"] = {names[d.lead]: d.polarity for d in dets}
+    log.derived["primary_lead"] = names[int(idx[primary])] if idx.size else None
+    log.derived["lead_quality_median"] = {
+        names[d.lead]: (None if not np.isfinite(d.quality).any() else
+                        round(float(np.nanmedian(d.quality)), 4)) for d in dets}
+    log.counts.update(fused=int(fused.r.size), accepted=int(fused.accepted.sum()),
+                      only_in_unusable=int(unusable.sum()),
+                      one_lead_only=int((~fused.accepted & ~unusable).sum()))
+    return fused, log
 
 
 def detect_beats(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig = RpeaksConfig(),
@@ -276,37 +348,5 @@ def detect_beats(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
     ``x``: (n_leads, n_samples) filtered signal; ``usable``: bool per lead; ``names``: lead names
     for the log (default: indices). Returns (:class:`Fused` with support over all leads, StageLog).
     """
-    names = names or [str(j) for j in range(np.shape(x)[0])]
     x = as_signal(x, fs, "detect_beats", min_samples=8)
-    n_leads = x.shape[0]
-    idx = np.flatnonzero(usable)
-    log = StageLog("rpeaks", params={k: getattr(cfg, k) for k in cfg.__dataclass_fields__})
-    peaks, conf, qual, pols = [], [], [], {}
-    for j in idx:
-        p, c, band = detect_lead(x[j], fs, cfg)
-        r, pol = refine_r(x[j], p, fs, cfg.refine_window_ms)
-        # refinement can bring two peaks together; keep the more confident one
-        keep = _sparse_refractory(r, c + 1e-9, max(1, int(round(cfg.min_rr_ms * fs / 1000))))
-        sel = np.isin(r, keep)
-        r, c = r[sel], c[sel]
-        _, first = np.unique(r, return_index=True)
-        r, c = r[first], c[first]
-        peaks.append(r)
-        conf.append(c)
-        qual.append(window_template_quality(band, r, fs))
-        pols[names[j]] = pol
-        log.counts[f"detections_{names[j]}"] = int(r.size)
-    fused = fuse(peaks, conf, qual, fs, cfg)
-    fused_primary = _primary(qual)
-    full = np.zeros((fused.r.size, n_leads), bool)
-    full[:, idx] = fused.support
-    lead_of = idx[fused.r_lead] if fused.r.size else fused.r_lead
-    fused = Fused(fused.r, full, fused.confidence, fused.accepted, lead_of)
-    log.derived["polarity"] = pols
-    log.derived["primary_lead"] = names[int(idx[fused_primary])] if idx.size else None
-    log.derived["lead_quality_median"] = {names[j]: (None if not np.isfinite(np.nanmedian(q)) else
-                                                   round(float(np.nanmedian(q)), 4))
-                                          for j, q in zip(idx, qual) if q.size}
-    log.counts.update(fused=int(fused.r.size), accepted=int(fused.accepted.sum()),
-                      one_lead_only=int((~fused.accepted).sum()))
-    return fused, log
+    return fuse_leads(detect_leads(x, fs, usable, cfg), x.shape[0], fs, cfg, names)

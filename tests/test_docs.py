@@ -12,7 +12,7 @@ DOCS = Path(__file__).resolve().parents[1] / "docs"
 def test_outputs_page_lists_every_column_and_key(demo_run):
     out, _ = demo_run
     page = (DOCS / "outputs.md").read_text()
-    for table in ("beats", "leads", "records"):
+    for table in ("beats", "leads", "records", "windows"):
         for col in pd.read_parquet(out / f"{table}.parquet").columns:
             assert f"`{col}`" in page, (table, col)
     manifest = json.loads((out / "manifest.json").read_text())
