@@ -155,6 +155,16 @@ class Dataset:
         flags = [{"code": f, "explanation": FLAGS.get(f, "")}
                  for f in filter(None, str(row["flags"]).split(";"))]
         rec_leads = self.leads[self.leads["record"] == row["record"]]
+        windows = []
+        wpath = self.path / "windows.parquet"
+        if wpath.exists():
+            w = self._table("windows")
+            w = w[(w["record"] == row["record"]) & (w["start"] <= row["r_sample"]) &
+                  (w["end"] > row["r_sample"])]
+            fs = float(self.records.set_index("record").loc[row["record"], "fs"])
+            windows = [{"lead": x.lead, "grade": x.grade, "decided_by": x.decided_by,
+                        "start_s": round(x.start / fs, 3), "end_s": round(x.end / fs, 3)}
+                       for x in w.itertuples()]
         return {"beat_id": beat_id, "record": row["record"], "patient": row.get("patient", ""),
                 "split": row.get("split", ""), "r_sample": int(row["r_sample"]),
                 "r_time_s": float(row["r_time_s"]), "label": row["label"],
@@ -162,7 +172,15 @@ class Dataset:
                 "tensor_index": int(row["tensor_index"]), "reasons": reasons, "flags": flags,
                 "scores": {c: _num(row[c]) for c in ("detect_conf", "n_leads_seen",
                                                      "template_corr", "hf_ratio", "bad_fraction")},
-                "leads_used": rec_leads[rec_leads["used"]]["lead"].tolist()}
+                "leads_used": rec_leads[rec_leads["used"]]["lead"].tolist(),
+                "windows": windows}
+
+    def source_of(self, record: str) -> str:
+        """Path of the input a record was read from (as recorded in the manifest)."""
+        names = self.records["record"].tolist()
+        if record not in names:
+            raise BeatmillError(f"no record {record!r} in {self.path}")
+        return self.manifest["inputs"]["records"][names.index(record)]
 
 
 def _num(v):

@@ -125,11 +125,12 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     dets = {d.lead: d for d in detect_leads(y, fs, usable, cfg.rpeaks)}
     other = {j: second_detector(y[j], fs) for j in dets} if cfg.windows.enabled else {}
     empty = np.zeros(0, np.int64)
-    win_tables, grades = [], {}
+    win_tables, grades, noise_grades = [], {}, {}
     for j in range(n_l):
         w = lead_windows(notched[j], y[j], masks[j], fs, dets[j].r if j in dets else empty,
                          other.get(j, empty), mains, cfg.windows, grade=cfg.windows.enabled)
         grades[j] = grade_codes(w["grade"])
+        noise_grades[j] = grade_codes(w["noise_grade"])
         w.insert(0, "lead", rec.leads[j])
         w.insert(0, "record", rec.name)
         win_tables.append(w)
@@ -158,7 +159,8 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
                                      for g in ("good", "noisy", "unusable")}))
     use_dets = [dets[j] for j in sorted(dets) if usable[j]]
     valid = [grades[d.lead][np.minimum(d.r // L, grades[d.lead].size - 1)] < 2 for d in use_dets]
-    fused, lg = fuse_leads(use_dets, n_l, fs, cfg.rpeaks, rec.leads, valid)
+    fused, lg = fuse_leads(use_dets, n_l, fs, cfg.rpeaks, rec.leads, valid,
+                           [grades[d.lead] < 2 for d in use_dets], L)
     res.logs.append(lg)
     res.leads = [_lead_row(rec, j, usable[j], lead_reason[j], axis, fault[j],
                            res.windows[res.windows.lead == rec.leads[j]]) for j in range(n_l)]
@@ -205,10 +207,12 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     res.logs.append(lg)
     # per beat and axis slot: the window grade of that lead at R; unusable slots are masked
     g_slot = np.full((vi.size, n_ax), 2, np.int8)
+    n_slot = np.full((vi.size, n_ax), 2, np.int8)
     for k, src in enumerate(rows_src):
         if slot_ok[k]:
-            g = grades[src]
-            g_slot[:, k] = g[np.minimum(r[vi] // L, g.size - 1)]
+            at = np.minimum(r[vi] // L, grades[src].size - 1)
+            g_slot[:, k] = grades[src][at]
+            n_slot[:, k] = noise_grades[src][at]
     beat_mask = slot_ok[None, :] & (g_slot < 2)
     # leads the reference annotator marked noisy/unreadable at a beat are masked for that beat
     all_noisy = np.zeros(vi.size, bool)
@@ -221,8 +225,16 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
             beat_mask &= ~ann
     beats_mv[~beat_mask] = 0.0
 
+    # a beat is "in noise" when every lead it keeps is noisy there by a noise test
+    in_noise = ((n_slot >= 1) | ~beat_mask).all(axis=1) & beat_mask.any(axis=1)
     scores = _beat_scores(r, vi, sv, ev, beats_mv, beat_mask, rows_src, notched, bad, fs, cfg,
                           other, usable, ra, fused.support.sum(axis=1), fused.confidence)
+    scores["_in_noise"] = in_noise
+    scores["_n_seen"] = fused.support.sum(axis=1)[vi]
+    n_usable_here = np.zeros(vi.size, np.int64)
+    for j in np.flatnonzero(usable):
+        n_usable_here += grades[j][np.minimum(r[vi] // L, grades[j].size - 1)] < 2
+    scores["_n_here"] = n_usable_here
     flags: list[list[str]] = [[] for _ in range(n)]
     _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, res, all_noisy)
 
@@ -271,10 +283,23 @@ def _lead_row(rec: Record, j: int, used: bool, reason: str, axis: list[str], fau
             "main_fault": _main_fault(w)}
 
 
+_FAULT_ORDER = ["fault_fraction", "amplitude_mv", "bsqi", "tsqi", "ksqi", "bassqi", "psqi",
+                "hf_ratio", "line_ratio", "hr_bpm", "max_rr_s", "rr_ratio"]
+
+
 def _main_fault(w: pd.DataFrame) -> str:
-    """The index that most often decided a non-good window of a lead ('' when all good)."""
-    parts = [p for cell in w.loc[w["grade"] != "good", "decided_by"] for p in cell.split(";") if p]
-    return max(sorted(set(parts)), key=parts.count) if parts else ""
+    """The test that most often decided a lead's non-good windows ('' when all good); ties go to
+    the more direct test, and a fault share is named by its kind (flat, clipped, missing)."""
+    bad = w[w["grade"] != "good"]
+    parts = [p for cell in bad["decided_by"] for p in cell.split(";") if p]
+    if not parts:
+        return ""
+    rank = {k: i for i, k in enumerate(_FAULT_ORDER)}
+    top = min(set(parts), key=lambda k: (-parts.count(k), rank.get(k, 99)))
+    if top == "fault_fraction":
+        kinds = {k: float(bad[f"{k}_fraction"].sum()) for k in ("flat", "clipped", "missing")}
+        return max(kinds, key=kinds.get)
+    return top
 
 
 def second_detector(x: np.ndarray, fs: float) -> np.ndarray:
@@ -360,11 +385,15 @@ def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, r
     has = beat_mask.any(axis=1)
     noisy_w = ((g_slot == 1) & beat_mask).any(axis=1) & has
     tc = scores["template_corr"][vi]
-    # a disagreement excludes only a weakly supported beat: one that some used lead missed, or
-    # whose envelope is below a typical beat's; a strong beat seen in every lead (a wide ectopic
-    # beat the peer detector misses) is kept with a flag
-    weak = scores.pop("_weak")[vi]
+    # a disagreement excludes only a weakly supported beat: one that some used lead missed, whose
+    # envelope is below a typical beat's, or that no good window vouches for; a strong beat seen
+    # in every lead in a good window (a wide ectopic beat the peer misses) is kept with a flag
+    weak = scores.pop("_weak")[vi] | (((g_slot >= 1) | ~beat_mask).all(axis=1) & has)
+    in_noise = scores.pop("_in_noise")
+    unconfirmed = (scores.pop("_n_seen") < scores.pop("_n_here")) | \
+        ~(tc >= q.noise_min_template_corr)
     checks = [
+        (has & in_noise & unconfirmed, reasons, "weak_in_noise"),
         (~has & slot_ok.any() & ~all_noisy, reasons, "unusable_window"),
         (noisy_w, reasons if wq.exclude_noisy else flags, "noisy_window"),
         (has & (scores["bad_fraction"][vi] > q.max_bad_fraction_in_beat), reasons,

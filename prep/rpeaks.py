@@ -203,7 +203,8 @@ class Fused:
 
 def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarray], fs: float,
          cfg: RpeaksConfig = RpeaksConfig(), window_s: float = _QUALITY_WINDOW_S,
-         valid: list[np.ndarray] | None = None) -> Fused:
+         valid: list[np.ndarray] | None = None, window_ok: list[np.ndarray] | None = None,
+         window_len: int | None = None) -> Fused:
     """Fuse per-lead detections (refined R positions) of the usable leads into one beat list.
 
     A beat seen by a strict majority of the leads is accepted. A beat seen by fewer is accepted
@@ -213,7 +214,9 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
 
     ``valid`` (one bool array per lead, per detection): detections in unusable stretches. They
     still form beats, but give no support; a beat with no valid support is not accepted and is
-    marked ``unusable``.
+    marked ``unusable``. ``window_ok`` (one bool array per lead, per quality window of
+    ``window_len`` samples): where a lead is unusable it is neither trusted nor counted in the
+    majority, so the leads usable there decide.
     """
     n_leads = len(peaks)
     if n_leads == 0 or sum(p.size for p in peaks) == 0:
@@ -258,12 +261,17 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     win = np.clip((r / (window_s * fs)).astype(np.int64), 0, q.shape[1] - 1)
     qw = np.nan_to_num(q[:, win].T, nan=-1.0)  # (n_c, n_leads)
     good = qw >= cfg.min_lead_template_corr
+    n_here = np.full(n_c, n_leads)
+    if window_ok is not None and window_len:
+        ok_m = np.column_stack([w[np.clip(r // window_len, 0, w.size - 1)] for w in window_ok])
+        good &= ok_m
+        n_here = np.maximum(ok_m.sum(axis=1), 1)
     trusted = np.zeros_like(good)
     trusted[:, primary] = good[:, primary]
     others = [j for j in range(n_leads) if j != primary]
     if others:
         trusted[:, others] = good[:, others] & ~good[:, [primary]]
-    accepted = ((2 * n_sup > n_leads) | (support & trusted).any(1)) & (n_sup > 0)
+    accepted = ((2 * n_sup > n_here) | (support & trusted).any(1)) & (n_sup > 0)
     # two accepted beats closer than the refractory period are one beat seen at two places
     # (leads disagree on where R is): keep the better supported one, then the primary's
     dist = int(round(cfg.min_rr_ms * fs / 1000))
@@ -314,7 +322,8 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
 
 def fuse_leads(dets: list[LeadDetections], n_leads: int, fs: float,
                cfg: RpeaksConfig = RpeaksConfig(), names: list[str] | None = None,
-               valid: list[np.ndarray] | None = None):
+               valid: list[np.ndarray] | None = None, window_ok: list[np.ndarray] | None = None,
+               window_len: int | None = None):
     """Fuse :func:`detect_leads` results; returns (:class:`Fused` over all leads, StageLog)."""
     names = names or [str(j) for j in range(n_leads)]
     idx = np.array([d.lead for d in dets], dtype=np.int64)
@@ -322,7 +331,7 @@ def fuse_leads(dets: list[LeadDetections], n_leads: int, fs: float,
     for d in dets:
         log.counts[f"detections_{names[d.lead]}"] = int(d.r.size)
     fused = fuse([d.r for d in dets], [d.conf for d in dets], [d.quality for d in dets], fs, cfg,
-                 valid=valid)
+                 valid=valid, window_ok=window_ok, window_len=window_len)
     full = np.zeros((fused.r.size, n_leads), bool)
     if idx.size:
         full[:, idx] = fused.support

@@ -96,6 +96,7 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
                 df[c] = np.nan
         df.insert(2, "grade", "good")
         df.insert(3, "decided_by", "")
+        df.insert(4, "noise_grade", "good")
         return df
     # moments without nan-functions: the last window is zero-padded and its count is exact
     fx = _frames(filtered, L, 0.0)
@@ -163,6 +164,10 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
     grade, why = grade_windows(df, cfg)
     df.insert(2, "grade", grade)
     df.insert(3, "decided_by", why)
+    rhythm = {"hr_bpm", "max_rr_s", "rr_ratio"}
+    # the grade from noise tests alone: rhythm findings (bigeminy, pauses) are not noise
+    df.insert(4, "noise_grade", [g if g != "noisy" or set(w.split(";")) - rhythm else "good"
+                                 for g, w in zip(grade, why)])
     return df
 
 

@@ -6,8 +6,9 @@ import pytest
 
 PKG = Path(__file__).resolve().parents[1] / "prep"
 STAGES = ["powerline", "bandpass", "baseline", "rpeaks", "segment", "resample", "normalize",
-          "quality", "labels"]
-HIGHER = {"pipeline", "dataset", "export", "check", "cli", "demo", "bench"}
+          "quality", "labels", "windows", "split"]
+HIGHER = {"pipeline", "dataset", "export", "check", "cli", "demo", "bench", "api", "viz",
+          "survey", "torch"}
 
 
 @pytest.mark.parametrize("stage", STAGES)

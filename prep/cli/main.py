@@ -205,6 +205,97 @@ def reasons() -> None:
         typer.echo(f"  {code:<18} {text}")
 
 
+@app.command()
+def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
+        beat_id: str = typer.Argument(..., help="A beat_id from beats.parquet, e.g. night05:10538."),
+        plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw the beat in context "
+                                            "to this PNG file.")) -> None:
+    """Explain one beat: where it is, its label, kept or not, and every reason with its evidence.
+
+    Example:
+
+      beatmill why runs/demo night05:10538 --plot night05.png
+    """
+    from ..api import open_dataset
+    from ..errors import BeatmillError
+
+    try:
+        ds = open_dataset(run_dir)
+        e = ds.explain(beat_id)
+    except BeatmillError as exc:
+        _fail(str(exc))
+    typer.echo(f"beat      {e['beat_id']}")
+    typer.echo(f"record    {e['record']} (patient {e['patient']}, split {e['split'] or '-'})")
+    typer.echo(f"time      {e['r_time_s']:.3f} s (sample {e['r_sample']})")
+    typer.echo(f"label     {e['label'] or '-'} (class {e['class']})")
+    typer.echo(f"leads     {', '.join(e['leads_used']) or '-'} used")
+    typer.echo(f"status    " + (f"kept, tensor row {e['tensor_index']}" if e["included"]
+                                else "excluded"))
+    for x in e["reasons"]:
+        ev = ""
+        if "score" in x:
+            ev = f": {x['score_name']} = {x['score']}, threshold {x['threshold_name']} = {x['threshold']}"
+        typer.echo(f"reason    {x['code']} [stage {x['stage']}] {x['explanation']}{ev}")
+    for x in e["flags"]:
+        typer.echo(f"flag      {x['code']}: {x['explanation']}")
+    for w in e["windows"]:
+        typer.echo(f"window    {w['lead']}: {w['grade']} ({w['start_s']}-{w['end_s']} s)" +
+                   (f", decided by {w['decided_by']}" if w["decided_by"] else ""))
+    sc = ", ".join(f"{k} {v:.3g}" if isinstance(v, float) else f"{k} {v}"
+                   for k, v in e["scores"].items() if v is not None)
+    typer.echo(f"scores    {sc}")
+    if plot:
+        from ..viz import plot_beat_context
+        try:
+            path = plot_beat_context(ds, beat_id, plot)
+        except (BeatmillError, OSError) as exc:
+            _fail(f"cannot draw the beat: {exc}")
+        typer.echo(f"plot      {path}")
+
+
+@app.command()
+def leads(inputs: List[str] = typer.Argument(..., help="Records or folders to survey."),
+          require: List[str] = typer.Option([], "--require", help="Rule every (or one) lead must "
+                                            "meet, e.g. 'usable>=0.8' or 'II:good>=0.5'; "
+                                            "repeatable."),
+          config: Optional[Path] = typer.Option(None, "--config", "-c", help="TOML configuration."),
+          fs: Optional[float] = typer.Option(None, "--fs", help="Sampling rate of CSV inputs.")) -> None:
+    """Survey lead quality without writing a dataset; exit 1 when a lead fails a --require rule.
+
+    Measures: usable (share of windows not unusable), good (share of good windows).
+
+    Example:
+
+      beatmill leads demo_records --require usable>=0.9
+    """
+    from ..survey import check_rules, parse_rule, survey
+    from ..config import Config
+    from ..errors import ConfigError
+
+    try:
+        cfg = Config.from_toml(config) if config else Config()
+        if fs:
+            cfg = cfg.replace(read={"csv_fs_hz": float(fs)})
+        rules = [parse_rule(r) for r in require]
+        table, failed = survey(inputs, cfg)
+    except ConfigError as exc:
+        _fail("\n  ".join(exc.problems))
+    if table.empty and not failed:
+        _fail("no record found")
+    typer.echo(f"{'record':<14}{'lead':<8}{'used':<6}{'usable':>8}{'good':>7}{'noisy':>7}"
+               f"{'unusable':>10}  main fault / reason")
+    for row in table.itertuples():
+        typer.echo(f"{row.record:<14}{row.lead:<8}{'yes' if row.used else 'no':<6}"
+                   f"{row.usable:>8.2f}{row.good:>7.2f}{row.windows_noisy:>7}{row.windows_unusable:>10}"
+                   f"  {row.reason or row.main_fault}")
+    for name, err in failed:
+        typer.echo(f"{name}: failed: {err}", err=True)
+    broken = check_rules(table, rules)
+    for msg in broken:
+        typer.echo(f"rule failed: {msg}", err=True)
+    raise typer.Exit(1 if broken or failed else 0)
+
+
 def main() -> None:
     try:
         app()

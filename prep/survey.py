@@ -1,0 +1,65 @@
+"""Lead-quality survey without writing a dataset (``beatmill leads``), and its --require rules."""
+from __future__ import annotations
+
+import operator
+import re
+
+import pandas as pd
+
+from .config import Config
+from .errors import ConfigError
+from .pipeline import process_record
+from .read import find_sources, read_source
+from .errors import BeatmillError
+
+_OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt}
+_RULE = re.compile(r"^\s*(?:(?P<lead>[^:<>=\s]+)\s*:)?\s*(?P<what>usable|good)\s*"
+                   r"(?P<op>>=|<=|>|<)\s*(?P<value>[0-9.]+)\s*$")
+
+
+def parse_rule(text: str) -> tuple[str | None, str, str, float]:
+    """'usable>=0.8' or 'II:good>=0.5' -> (lead or None, measure, operator, value)."""
+    m = _RULE.match(text)
+    if not m:
+        raise ConfigError(f"--require {text!r}: write MEASURE OP VALUE or LEAD:MEASURE OP VALUE, "
+                          "with MEASURE usable or good, OP one of >= <= > <, e.g. usable>=0.8")
+    v = float(m["value"])
+    if not 0 <= v <= 1:
+        raise ConfigError(f"--require {text!r}: the value is a share between 0 and 1")
+    return m["lead"], m["what"], m["op"], v
+
+
+def survey(inputs, cfg: Config) -> tuple[pd.DataFrame, list[tuple[str, str]]]:
+    """One row per record and ECG lead: used, usable and good shares, window counts, main fault."""
+    found, problems = find_sources(list(inputs))
+    if not found and problems:
+        raise ConfigError(problems)
+    rows, failed = [], []
+    for src in found:
+        try:
+            rec = read_source(src, cfg.read)
+            res = process_record(rec, cfg, rec.leads)
+        except BeatmillError as exc:
+            failed.append((src.name, str(exc)))
+            continue
+        for lead in res.leads:
+            if "windows_good" not in lead:
+                continue  # skipped non-ECG channel
+            n = lead["windows_good"] + lead["windows_noisy"] + lead["windows_unusable"]
+            rows.append({**lead, "usable": lead["usable_share"],
+                         "good": lead["windows_good"] / max(n, 1)})
+    return pd.DataFrame(rows), failed
+
+
+def check_rules(table: pd.DataFrame, rules) -> list[str]:
+    """Messages for every record and lead that breaks a rule."""
+    out = []
+    for lead, what, op, value in rules:
+        sel = table if lead is None else table[table["lead"].str.lower() == lead.lower()]
+        if lead is not None and sel.empty:
+            out.append(f"no record has lead {lead}")
+        for row in sel.itertuples():
+            got = getattr(row, what)
+            if not _OPS[op](got, value):
+                out.append(f"{row.record} {row.lead}: {what} {got:.2f} is not {op} {value:g}")
+    return out
