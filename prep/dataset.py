@@ -1,6 +1,7 @@
 """``run``: read sources, process every record, and write one dataset folder."""
 from __future__ import annotations
 
+import hashlib
 import json
 import logging
 import os
@@ -23,7 +24,8 @@ from .labels import AAMI_CLASSES, UNLABELED, load_mapping
 from .normalize import apply_stats, fit_per_lead, normalize
 from .pipeline import BEAT_COLUMNS, RecordResult, _empty_beats, safe_process
 from .split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
-from .read import Source, find_sources, read_source
+from .read import Source, find_sources, read_source, source_inputs
+from .shards import read_shard, write_shard
 
 log = logging.getLogger("prep")
 
@@ -65,8 +67,22 @@ def _peek_leads(src: Source, cfg: Config) -> list[str] | None:
 
 def run(sources: list[str | Path], out: str | Path, *, config: Config | None = None,
         overwrite: bool = False, csv_fs: float | None = None,
-        progress: Callable[[RecordResult, int, int], None] | None = None) -> RunSummary:
+        progress: Callable[[RecordResult, int, int], None] | None = None,
+        workers: int | None = None, shards: str | None = None,
+        dask: str | None = None) -> RunSummary:
     """Process records and write the dataset folder ``out`` (what ``beatmill run`` does).
+
+    Parameters
+    ----------
+    workers : int, optional
+        Parallel processes (default: ``$BEATMILL_WORKERS``, else every core). Outputs are the
+        same byte for byte for any number.
+    shards : str, optional
+        Where per-record shards go (a folder or an fsspec URL; default ``OUT/.shards``).
+        Re-running the same command reuses committed shards whose inputs are unchanged.
+    dask : str, optional
+        A dask.distributed scheduler address, or ``"local"`` for a LocalCluster with one worker
+        process per core; records are then processed as cluster tasks.
 
     Raises :class:`ConfigError` for problems found before any record is read (bad config, no
     input found, output folder in the way). Record failures never raise: they are reported in
@@ -82,7 +98,9 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         raise ConfigError(problems or ["no input records given"])
     for p in problems:
         log.warning("%s", p)
-    _prepare_out(out, overwrite, cfg.sha256(extra))
+    chash = cfg.sha256(extra)
+    root = str(shards) if shards else str(out / ".shards")
+    _prepare_out(out, overwrite, chash, root)
 
     if cfg.leads.select:
         axis = resolve_axis(cfg.leads.select)
@@ -92,42 +110,141 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         if not axis:
             raise ConfigError("the records share no ECG lead; choose the lead axis with --leads "
                               "(for example --leads II)")
-    results: list[RecordResult] = []
+    # inputs are hashed first: a committed shard is reused only for unchanged inputs
+    inputs = [_inputs_or_empty(s, cfg) for s in found]
+    key = _shard_hash(json.dumps({"config": chash, "axis": axis}))
+    results: list = [None] * len(found)
+    todo = []
+    done = 0
     for i, src in enumerate(found):
-        res = safe_process(lambda s=src: read_source(s, cfg.read), src.name, cfg, axis, mapping)
+        cached = read_shard(root, src.name, key, inputs[i])
+        if cached is None:
+            todo.append(i)
+        else:
+            results[i] = cached
+            done += 1
+            if progress:
+                progress(cached, done, len(found))
+    if len(found) - len(todo):
+        log.info("reusing %d committed shards", len(found) - len(todo))
+    tasks = [(found[i], cfg, axis, mapping, root, key, inputs[i]) for i in todo]
+    for i, error in zip(todo, _execute(tasks, workers, dask)):
+        done += 1
+        res = read_shard(root, found[i].name, key, inputs[i])
+        if res is None:  # the worker died before committing: report, never trust half a shard
+            res = RecordResult(found[i].name, "failed", error=error or "the worker processing "
+                               "this record stopped before writing its results")
         if res.status == "failed":
-            log.warning("%s: %s", src.name, res.error)
-        results.append(res)
+            log.warning("%s: %s", res.name, res.error)
+        results[i] = res
         if progress:
-            progress(res, i + 1, len(found))
-    a = assemble(results, cfg, axis, [str(s) for s in sources], [str(s.path) for s in found],
-                 mapping, pmap, extra)
-    _write_in_place(out, a)
+            progress(res, done, len(found))
+    staging = out / f".staging-{os.getpid()}"
+    shutil.rmtree(staging, ignore_errors=True)
+    try:
+        staging.mkdir(parents=True)
+
+        def alloc(name, shape, dtype):
+            if int(np.prod(shape)) == 0:
+                return np.zeros(shape, dtype)
+            return np.lib.format.open_memmap(staging / name, mode="w+", dtype=dtype, shape=shape)
+
+        a = assemble(results, cfg, axis, [str(s) for s in sources], [str(s.path) for s in found],
+                     mapping, pmap, extra, alloc=alloc)
+        write_assembled(staging, a)
+        _swap_in(staging, out)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
     return _summary(out, a)
 
 
-def _write_in_place(out: Path, a: Assembled) -> None:
-    """Write into a staging folder beside ``out``, then swap it in; on any error (no space, no
-    permission) the staging folder is removed and ``out`` is left as it was."""
-    out.parent.mkdir(parents=True, exist_ok=True)
-    stage = out.parent / f".{out.name}.partial-{os.getpid()}"
-    old = out.parent / f".{out.name}.old-{os.getpid()}"
-    shutil.rmtree(stage, ignore_errors=True)
+def _shard_hash(key: str) -> str:
+    return hashlib.sha256(key.encode()).hexdigest()
+
+
+def _inputs_or_empty(src: Source, cfg: Config) -> list:
     try:
-        stage.mkdir()
-        write_assembled(stage, a)
-        if out.exists():
-            out.rename(old)
-        stage.rename(out)
-    except BaseException:
-        shutil.rmtree(stage, ignore_errors=True)
-        if old.exists() and not out.exists():
-            old.rename(out)
-        raise
-    shutil.rmtree(old, ignore_errors=True)
+        return source_inputs(src, cfg.read)
+    except OSError:
+        return []
 
 
-def _prepare_out(out: Path, overwrite: bool, config_hash: str) -> None:
+def _shard_task(args) -> str:
+    """Process one record and write its shard (in a worker process or on a Dask worker)."""
+    src, cfg, axis, mapping, root, key, inputs = args
+    res = safe_process(lambda: read_source(src, cfg.read), src.name, cfg, axis, mapping)
+    if inputs:
+        res.inputs = [tuple(x) for x in inputs]
+    write_shard(root, res, key, inputs)
+    return res.error
+
+
+def _execute(tasks: list, workers: int | None, dask: str | None):
+    """Run shard tasks; yields each task's error text ('' when fine) in task order."""
+    if not tasks:
+        return
+    if dask:
+        yield from _execute_dask(tasks, dask)
+        return
+    n = workers or int(os.environ.get("BEATMILL_WORKERS", 0) or 0) or os.cpu_count() or 1
+    n = max(1, min(n, len(tasks)))
+    if n == 1:
+        for t in tasks:
+            yield _shard_task(t)
+        return
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures.process import BrokenProcessPool
+
+    # fork where the platform has it: children need not re-import the caller's main module
+    # (a notebook or an unguarded script); elsewhere spawn
+    method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
+    with ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context(method)) as pool:
+        futures = [pool.submit(_shard_task, t) for t in tasks]
+        for f in futures:  # in task order; the pool works ahead meanwhile
+            try:
+                yield f.result()
+            except BrokenProcessPool:
+                yield "a worker process died (out of memory?) while processing this record"
+            except Exception as exc:  # noqa: BLE001 - a task's failure is that record's failure
+                yield f"unexpected {type(exc).__name__}: {exc}"
+
+
+def _execute_dask(tasks: list, address: str):
+    """Send shard tasks to a dask.distributed cluster (``local``: a LocalCluster)."""
+    try:
+        from dask.distributed import Client, LocalCluster
+    except ImportError:
+        raise ConfigError("--dask needs dask.distributed: pip install 'beatmill[dask]'") from None
+    cluster = None
+    if address == "local":
+        cluster = LocalCluster(n_workers=os.cpu_count() or 1, threads_per_worker=1,
+                               processes=True, dashboard_address=None)
+        client = Client(cluster)
+    else:
+        client = Client(address)
+    try:
+        futures = client.map(_shard_task, tasks, pure=False)
+        for f in futures:
+            try:
+                yield f.result()
+            except Exception as exc:  # noqa: BLE001
+                yield f"unexpected {type(exc).__name__} on a Dask worker: {exc}"
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def _swap_in(staging: Path, out: Path) -> None:
+    """Move the staged files into ``out``; the manifest, which vouches for the others, last.
+    A failure while writing (no space, no permission) happens in the staging folder, before
+    anything in ``out`` is touched."""
+    for name in TENSOR_FILES + TABLE_FILES + (MANIFEST,):
+        os.replace(staging / name, out / name)
+
+
+def _prepare_out(out: Path, overwrite: bool, config_hash: str, shard_root: str) -> None:
     """Refuse, before any work, an output that is in the way; nothing is deleted here.
 
     A dataset folder written with the same configuration hash is processed again in place (the
@@ -138,6 +255,7 @@ def _prepare_out(out: Path, overwrite: bool, config_hash: str) -> None:
     if out.exists() and any(out.iterdir()):
         previous = _previous_hash(out)
         if previous == config_hash:
+            _mark_run(out, config_hash)
             return
         if not overwrite:
             if previous:
@@ -146,18 +264,30 @@ def _prepare_out(out: Path, overwrite: bool, config_hash: str) -> None:
                                   "choose a new --out or pass --overwrite to replace it")
             raise ConfigError(f"output folder {out} is not empty; choose a new --out or pass "
                               "--overwrite to replace it")
-        if not (out / MANIFEST).exists():
+        if not (out / MANIFEST).exists() and not (out / ".shards" / "RUN.json").exists():
             raise ConfigError(f"refusing to replace {out}: it holds files but no {MANIFEST}, so "
                               "it is not a beatmill dataset; remove it yourself if you mean it")
     if not os.access(out if out.exists() else _existing_parent(out), os.W_OK):
         raise ConfigError(f"cannot write to {out}: permission denied; choose another --out")
+    if overwrite and (out / ".shards").exists():
+        shutil.rmtree(out / ".shards")  # shards of another configuration
+    _mark_run(out, config_hash)
+
+
+def _mark_run(out: Path, config_hash: str) -> None:
+    """Record the configuration of the run in progress, so a killed run is resumed only with it."""
+    (out / ".shards").mkdir(parents=True, exist_ok=True)
+    (out / ".shards" / "RUN.json").write_text(json.dumps({"config_sha256": config_hash}))
 
 
 def _previous_hash(out: Path) -> str | None:
-    try:
-        return json.loads((out / MANIFEST).read_text(encoding="utf-8")).get("config_sha256")
-    except (OSError, ValueError, AttributeError):
-        return None
+    """Config hash of the dataset in ``out``, or of the run that was writing it when it stopped."""
+    for f in (out / MANIFEST, out / ".shards" / "RUN.json"):
+        try:
+            return json.loads(f.read_text(encoding="utf-8")).get("config_sha256")
+        except (OSError, ValueError, AttributeError):
+            continue
+    return None
 
 
 def _existing_parent(p: Path) -> Path:
@@ -190,8 +320,15 @@ class Assembled:
 
 
 def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: list[str],
-             record_paths: list[str], mapping: dict, pmap: dict, extra: dict) -> Assembled:
-    """Split, order, normalize and tabulate processed records into one dataset (no I/O)."""
+             record_paths: list[str], mapping: dict, pmap: dict, extra: dict,
+             alloc=None) -> Assembled:
+    """Split, order, normalize and tabulate processed records into one dataset.
+
+    ``alloc(name, shape, dtype)`` provides the output arrays (default: in memory); the writer
+    passes memory-mapped files, so the tensor streams record by record and peak memory does not
+    grow with the number of records. Record tensors may be memory-mapped shards.
+    """
+    alloc = alloc or (lambda name, shape, dtype: np.zeros(shape, dtype))
     n_ax, n_s = len(axis), cfg.resample.n_samples
     for r in results:  # failed records contribute empty arrays of the right shape
         if r.tensor is None:
@@ -246,13 +383,8 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     kept = kept.sort_values(["_rank", "patient", "record", "r_sample"], kind="stable")
     beats["tensor_index"] = -1
     beats.loc[kept.index, "tensor_index"] = np.arange(len(kept))
-    raw = (np.concatenate([results[k].tensor[li] [None] for k, li in
-                           zip(kept["_rec"], kept["_local"])]) if len(kept) else
-           np.zeros((0, n_ax, n_s)))
-    mask = (np.concatenate([results[k].mask[li][None] for k, li in
-                            zip(kept["_rec"], kept["_local"])]) if len(kept) else
-            np.zeros((0, n_ax), bool))
-    tensor, center, scale, norm_note = _normalize_all(raw, mask, kept, cfg)
+    tensor, mask, center, scale, norm_note = _gather_normalized(results, kept, cfg, n_ax, n_s,
+                                                                 alloc)
     ranges = {}
     for sname in SPLITS:
         idx = np.flatnonzero(kept["split"].to_numpy() == sname)
@@ -322,16 +454,18 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     windows = (pd.concat(wins, ignore_index=True) if wins else
                pd.DataFrame({c: pd.Series(dtype="float64") for c in
                              ["record", "lead", "start", "end", "grade", "decided_by"]}))
-    return Assembled(tensor.astype(np.float32), mask.astype(bool), center.astype(np.float32),
-                     scale.astype(np.float32), beats, leads, records, windows, manifest, code)
+    return Assembled(tensor, mask, center, scale, beats, leads, records, windows, manifest, code)
 
 
 def write_assembled(out: Path, a: Assembled) -> None:
-    """Write an assembled dataset; the manifest, holding every file's SHA-256, comes last."""
-    write_npy(out / "beats.npy", a.beats)
-    write_npy(out / "lead_mask.npy", a.lead_mask)
-    write_npy(out / "norm_center.npy", a.norm_center)
-    write_npy(out / "norm_scale.npy", a.norm_scale)
+    """Write an assembled dataset; the manifest, holding every file's SHA-256, comes last.
+    Tensors already memory-mapped into ``out`` (see :func:`assemble`) are flushed, not copied."""
+    for name, arr in (("beats.npy", a.beats), ("lead_mask.npy", a.lead_mask),
+                      ("norm_center.npy", a.norm_center), ("norm_scale.npy", a.norm_scale)):
+        if isinstance(arr, np.memmap) and Path(arr.filename).resolve() == (out / name).resolve():
+            arr.flush()
+        else:
+            write_npy(out / name, arr)
     write_parquet(out / "beats.parquet", a.table)
     write_parquet(out / "leads.parquet", a.leads)
     write_parquet(out / "records.parquet", a.records)
@@ -348,30 +482,96 @@ def _summary(out: Path, a: Assembled) -> RunSummary:
                       a.manifest["splits"])
 
 
-def _normalize_all(raw: np.ndarray, mask: np.ndarray, kept: pd.DataFrame, cfg: Config):
-    """Normalize the ordered kept beats; dataset statistics come from the training split."""
+def _gather_normalized(results: list[RecordResult], kept: pd.DataFrame, cfg: Config, n_ax: int,
+                       n_s: int, alloc):
+    """Copy kept beats into the output arrays in their final order, normalized, one record's
+    contiguous run of rows at a time. Dataset statistics come from the training split."""
     m, scope = cfg.normalize.method, cfg.normalize.scope
-    if scope == "beat" or len(kept) == 0:
-        y, c, s = normalize(raw, mask, m, "beat")
-        return y, c, s, "each beat and lead"
-    if scope == "record":
-        c = np.zeros(mask.shape)
-        s = np.ones(mask.shape)
-        recs = kept["record"].to_numpy()
-        for name in pd.unique(recs):
-            sel = recs == name
-            cr, sr = fit_per_lead(raw[sel], mask[sel], m)
-            c[sel], s[sel] = cr, sr
-        y, c, s = apply_stats(raw, mask, c, s)
-        return y, c, s, "each record and lead"
-    train = kept["split"].to_numpy() == "train"
-    note = "the training split, per lead"
-    if not train.any():
-        train = np.ones(len(kept), bool)
-        note = "all kept beats, per lead (the training split is empty)"
-    c1, s1 = fit_per_lead(raw[train], mask[train], m)
-    y, c, s = apply_stats(raw, mask, c1[None, :], s1[None, :])
-    return y, c, s, note
+    n = len(kept)
+    tensor = alloc("beats.npy", (n, n_ax, n_s), np.float32)
+    mask = alloc("lead_mask.npy", (n, n_ax), np.bool_)
+    center = alloc("norm_center.npy", (n, n_ax), np.float32)
+    scale = alloc("norm_scale.npy", (n, n_ax), np.float32)
+    recs = kept["_rec"].to_numpy()
+    local = kept["_local"].to_numpy()
+    splits = kept["split"].to_numpy()
+    cuts = np.flatnonzero(np.r_[True, recs[1:] != recs[:-1], True]) if n else np.array([0])
+    runs = list(zip(cuts[:-1], cuts[1:]))
+
+    def part(a, b):
+        k = recs[a]
+        li = local[a:b]
+        return (np.asarray(results[k].tensor[li], dtype=np.float64),
+                np.asarray(results[k].mask[li], dtype=bool))
+
+    note = {"beat": "each beat and lead", "record": "each record and lead"}.get(scope, "")
+    stats = None
+    if scope == "dataset" and n:
+        acc = LeadStats(m, n_ax)
+        train_runs = [(a, b) for a, b in runs if splits[a] == "train"] or runs
+        note = ("the training split, per lead" if any(splits[a] == "train" for a, _ in runs)
+                else "all kept beats, per lead (the training split is empty)")
+        for a, b in train_runs:
+            acc.add(*part(a, b))
+        stats = acc.result()
+    for a, b in runs:  # one step per record
+        if b <= a:
+            continue
+        raw, mk = part(a, b)
+        if scope == "beat":
+            y, c, sc = normalize(raw, mk, m, "beat")
+        elif scope == "record":
+            c0, s0 = fit_per_lead(raw, mk, m)
+            y, c, sc = apply_stats(raw, mk, c0[None, :], s0[None, :])
+        else:
+            y, c, sc = apply_stats(raw, mk, stats[0][None, :], stats[1][None, :])
+        tensor[a:b] = y
+        mask[a:b] = mk
+        center[a:b] = c
+        scale[a:b] = sc
+    return tensor, mask, center, scale, note
+
+
+class LeadStats:
+    """Per-lead normalization statistics accumulated over batches of beats (unmasked leads)."""
+
+    def __init__(self, method: str, n_leads: int):
+        self.method, self.n = method, n_leads
+        self.sum = np.zeros(n_leads)
+        self.sq = np.zeros(n_leads)
+        self.cnt = np.zeros(n_leads)
+        self.lo = np.full(n_leads, np.inf)
+        self.hi = np.full(n_leads, -np.inf)
+        self.values: list[list[np.ndarray]] = [[] for _ in range(n_leads)]
+
+    def add(self, beats: np.ndarray, mask: np.ndarray) -> None:
+        for j in range(self.n):
+            v = beats[mask[:, j], j]
+            if v.size == 0:
+                continue
+            self.sum[j] += v.sum()
+            self.sq[j] += (v * v).sum()
+            self.cnt[j] += v.size
+            self.lo[j] = min(self.lo[j], v.min())
+            self.hi[j] = max(self.hi[j], v.max())
+            if self.method == "robust":  # exact quantiles need the values: one lead's train beats
+                self.values[j].append(v.ravel().astype(np.float32))
+
+    def result(self) -> tuple[np.ndarray, np.ndarray]:
+        c, s = np.zeros(self.n), np.ones(self.n)
+        for j in range(self.n):
+            if self.cnt[j] == 0 or self.method == "none":
+                continue
+            if self.method == "zscore":
+                c[j] = self.sum[j] / self.cnt[j]
+                s[j] = np.sqrt(max(self.sq[j] / self.cnt[j] - c[j] ** 2, 0.0))
+            elif self.method == "minmax":
+                c[j], s[j] = self.lo[j], self.hi[j] - self.lo[j]
+            else:
+                q1, q2, q3 = np.percentile(np.concatenate(self.values[j]), [25, 50, 75])
+                c[j], s[j] = q2, q3 - q1
+        s = np.where(s > 1e-6, s, 1.0)
+        return c, s
 
 
 def split_summary(info: dict) -> str:

@@ -243,7 +243,7 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     tensor_index[included] = np.arange(int(included.sum()))
     pos_in_valid = np.full(n, -1, np.int64)
     pos_in_valid[vi] = np.arange(vi.size)
-    res.tensor = beats_mv[pos_in_valid[included]]
+    res.tensor = beats_mv[pos_in_valid[included]].astype(np.float32)  # as stored in shards
     res.mask = beat_mask[pos_in_valid[included]]
 
     rr_prev, rr_next = _rr(r, ra, fs)

@@ -107,6 +107,28 @@ def _segment_names(bases: list[Path]) -> set[Path]:
     return out
 
 
+def source_inputs(src: Source, cfg: ReadConfig) -> list[tuple[str, str]]:
+    """(file name, SHA-256) of every file a source's record is read from, without decoding it:
+    WFDB header, signal files named by the header, annotation file; CSV and its sidecar."""
+    if src.kind == "csv":
+        files = [src.path] + ([src.path.with_suffix(".json")]
+                              if src.path.with_suffix(".json").exists() else [])
+        return [(f.name, sha256_file(f)) for f in files]
+    base = src.path
+    files = {Path(str(base) + ".hea")}
+    try:
+        text = Path(str(base) + ".hea").read_bytes().decode("latin-1")
+        lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+        for ln in lines[1:]:
+            tok = ln.split()
+            if tok and tok[0] != "~":
+                files.add(base.parent / tok[0])
+    except OSError:
+        pass
+    files.add(Path(str(base) + "." + cfg.annotation_extension))
+    return [(f.name, sha256_file(f)) for f in sorted(files) if f.is_file()]
+
+
 def read_source(src: Source, cfg: ReadConfig) -> Record:
     if src.kind == "wfdb":
         return read_wfdb(src.path, cfg, name=src.name)
@@ -152,9 +174,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     data = np.ascontiguousarray(sig[:, keep].T, dtype=np.float64)
     data *= np.array([scale_to_mv(units[i]) for i in keep])[:, None]
     ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1])
-    if ann is not None:
-        files.add(Path(str(base) + "." + cfg.annotation_extension))
-    inputs = [(f.name, sha256_file(f)) for f in sorted(files) if f.exists()]
+    inputs = source_inputs(Source("wfdb", base, name or base.name), cfg)
     bad = ~np.isfinite(data)
     if bad.any():
         warnings.append(f"{int(bad.sum())} missing or non-finite samples become gaps")
@@ -319,9 +339,8 @@ def read_csv(path: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | No
                           "leave cells empty for missing samples", path=shown, lead=str(col),
                           stage="read")
     data = df[keep].to_numpy(dtype=np.float64).T * scale_to_mv(units)
-    files = [path] + ([side] if side.exists() else [])
     return Record(name=name or path.stem, fs=rate, signals=np.ascontiguousarray(data),
                   lead_names=[str(c) for c in keep], leads=[canonical_lead(str(c)) for c in keep],
-                  units=["mV"] * len(keep), inputs=[(f.name, sha256_file(f)) for f in files],
+                  units=["mV"] * len(keep), inputs=source_inputs(Source("csv", path, path.stem), cfg),
                   skipped=skipped, path=shown,
                   channels=[list(df.columns).index(c) for c in keep])

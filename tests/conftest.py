@@ -1,10 +1,14 @@
 """Shared fixtures. Real reference records live in ../shared/ref-ecg (never copied here)."""
 from __future__ import annotations
 
+import os
 import shutil
 from pathlib import Path
 
 import pytest
+
+# one worker by default in tests (each test's batch is small); tests of parallel runs ask for more
+os.environ.setdefault("BEATMILL_WORKERS", "1")
 
 ROOT = Path(__file__).resolve().parents[1]
 REF = ROOT.parent / "shared" / "ref-ecg"

@@ -194,7 +194,7 @@ def test_out_of_space_leaves_previous_state_intact(demo_run, tmp_path, monkeypat
     out, _ = demo_run
     target = tmp_path / "ds"
     shutil.copytree(out, target)
-    before = {f.name: f.read_bytes() for f in target.iterdir()}
+    before = {f.name: f.read_bytes() for f in target.iterdir() if f.is_file()}
     import prep.dataset as D
 
     def full(*a, **k):
@@ -202,8 +202,8 @@ def test_out_of_space_leaves_previous_state_intact(demo_run, tmp_path, monkeypat
     monkeypatch.setattr(D, "write_parquet", full)
     with pytest.raises(OSError):
         run([DEMO / "night01.hea"], target, overwrite=True)
-    assert {f.name: f.read_bytes() for f in target.iterdir()} == before
-    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".ds.")]
+    assert {f.name: f.read_bytes() for f in target.iterdir() if f.is_file()} == before
+    assert not [p for p in target.iterdir() if p.name.startswith(".staging")]
 
 
 # ---- property-based and fuzz tests ---------------------------------------------------------

@@ -53,15 +53,24 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
         patients: Optional[Path] = typer.Option(None, "--patients", help="CSV record,patient "
                                                 "mapping for patient-wise splits."),
         seed: Optional[int] = typer.Option(None, "--seed", help="Seed of the patient split."),
+        workers: Optional[int] = typer.Option(None, "--workers", "-w", min=1,
+                                              help="Parallel processes (default: all cores)."),
+        shards: Optional[str] = typer.Option(None, "--shards", help="Where per-record shards go "
+                                             "(folder or fsspec URL; default OUT/.shards)."),
+        dask: Optional[str] = typer.Option(None, "--dask", help="dask.distributed scheduler "
+                                           "address, or 'local' for a LocalCluster."),
         overwrite: bool = typer.Option(False, "--overwrite",
                                        help="Replace an existing dataset folder."),
         verbose: int = typer.Option(0, "--verbose", "-v", count=True, help="More messages."),
         quiet: bool = typer.Option(False, "--quiet", "-q", help="Errors only.")) -> None:
     """Process records and write a dataset folder, split by patient.
 
+    Re-running the same command on the same folder resumes: records whose committed shard
+    matches their inputs are not processed again.
+
     Example:
 
-      beatmill run demo_records --out runs/demo --leads II,V5 --train-classes N
+      beatmill run demo_records --out runs/demo --leads II,V5 --train-classes N --workers 2
     """
     _setup_logging(verbose, quiet)
     from ..config import Config
@@ -84,7 +93,7 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
     progress, stop = _progress(quiet)
     try:
         summary = run_dataset(inputs, out, config=cfg, overwrite=overwrite, csv_fs=fs,
-                              progress=progress)
+                              progress=progress, workers=workers, shards=shards, dask=dask)
     except ConfigError as exc:
         stop()
         _fail("\n  ".join(exc.problems) if len(exc.problems) > 1 else str(exc))

@@ -1,0 +1,131 @@
+"""Per-record shards: a record's results written as soon as it is processed, trusted only once
+its commit marker exists.
+
+A shard is a folder holding ``tensor.npy``, ``mask.npy``, ``beats.parquet``, ``leads.parquet``,
+``windows.parquet`` and ``meta.json``, then ``COMMIT.json``, written last, holding the config hash,
+the SHA-256 of every input file and of every shard file. A shard without a commit marker, or
+whose files do not match it, is never trusted, so a run killed at any moment (or an object store
+without atomic rename) leaves nothing a later run would wrongly reuse. Shard roots may be local
+folders or fsspec URLs (for a Dask cluster's shared storage).
+"""
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import re
+from dataclasses import asdict
+
+import numpy as np
+import pandas as pd
+
+from .model import StageLog
+from .pipeline import RecordResult
+
+COMMIT = "COMMIT.json"
+_FILES = ("tensor.npy", "mask.npy", "beats.parquet", "leads.parquet", "windows.parquet",
+          "meta.json")
+
+
+def _fs(root: str):
+    import fsspec
+    return fsspec.core.url_to_fs(str(root))
+
+
+def shard_name(record: str) -> str:
+    """A file-system-safe, unique folder name for a record name."""
+    safe = re.sub(r"[^A-Za-z0-9_.-]+", "_", record)[:60]
+    return f"{safe}-{hashlib.sha256(record.encode()).hexdigest()[:12]}"
+
+
+def _npy(arr) -> bytes:
+    b = io.BytesIO()
+    np.save(b, np.ascontiguousarray(arr), allow_pickle=False)
+    return b.getvalue()
+
+
+def _parquet(df: pd.DataFrame) -> bytes:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+    b = io.BytesIO()
+    pq.write_table(pa.Table.from_pandas(df, preserve_index=False), b, compression="zstd")
+    return b.getvalue()
+
+
+def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) -> None:
+    """Write one record's shard; the commit marker goes last."""
+    fs, base = _fs(root)
+    d = f"{base.rstrip('/')}/{shard_name(res.name)}"
+    fs.makedirs(d, exist_ok=True)
+    if fs.exists(f"{d}/{COMMIT}"):
+        fs.rm(f"{d}/{COMMIT}")  # an old marker must not vouch for new files
+    meta = {"name": res.name, "status": res.status, "error": res.error, "fs": res.fs,
+            "duration_s": res.duration_s, "n_leads": res.n_leads, "inputs": res.inputs,
+            "comments": res.comments, "warnings": res.warnings, "leads": res.leads,
+            "logs": [lg.to_dict() for lg in res.logs]}
+    blobs = {
+        "tensor.npy": _npy((res.tensor if res.tensor is not None else np.zeros((0, 0, 0)))
+                           .astype(np.float32)),
+        "mask.npy": _npy(res.mask if res.mask is not None else np.zeros((0, 0), bool)),
+        "beats.parquet": _parquet(res.beats if res.beats is not None else pd.DataFrame()),
+        "leads.parquet": _parquet(pd.DataFrame(res.leads)),
+        "windows.parquet": _parquet(res.windows if res.windows is not None else pd.DataFrame()),
+        "meta.json": json.dumps(meta, default=_plain, sort_keys=True).encode(),
+    }
+    for name, data in blobs.items():
+        with fs.open(f"{d}/{name}", "wb") as fh:
+            fh.write(data)
+    commit = {"record": res.name, "config_sha256": config_hash, "inputs": [list(x) for x in inputs],
+              "files": {k: hashlib.sha256(v).hexdigest() for k, v in blobs.items()}}
+    with fs.open(f"{d}/{COMMIT}", "wb") as fh:
+        fh.write(json.dumps(commit, sort_keys=True).encode())
+
+
+def _plain(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    raise TypeError(type(o).__name__)
+
+
+def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
+               verify: bool = True) -> RecordResult | None:
+    """The record's committed shard, or None when absent, uncommitted, stale or corrupt.
+
+    ``inputs`` (file, SHA-256) pairs must match the commit (None skips that check).
+    """
+    fs, base = _fs(root)
+    d = f"{base.rstrip('/')}/{shard_name(record)}"
+    try:
+        with fs.open(f"{d}/{COMMIT}", "rb") as fh:
+            commit = json.loads(fh.read())
+    except (FileNotFoundError, ValueError, OSError):
+        return None
+    if commit.get("config_sha256") != config_hash or commit.get("record") != record:
+        return None
+    if inputs is not None and [list(x) for x in inputs] != commit.get("inputs"):
+        return None
+    blobs = {}
+    try:
+        for name in _FILES:
+            with fs.open(f"{d}/{name}", "rb") as fh:
+                blobs[name] = fh.read()
+    except (FileNotFoundError, OSError):
+        return None
+    if verify and any(hashlib.sha256(blobs[k]).hexdigest() != commit["files"].get(k) for k in _FILES):
+        return None
+    meta = json.loads(blobs["meta.json"])
+    res = RecordResult(meta["name"], meta["status"], meta["error"], meta["fs"], meta["duration_s"],
+                       meta["n_leads"], [tuple(x) for x in meta["inputs"]],
+                       comments=meta["comments"], warnings=meta["warnings"], leads=meta["leads"])
+    res.logs = [StageLog(**lg) for lg in meta["logs"]]
+    res.tensor = np.load(io.BytesIO(blobs["tensor.npy"]))
+    res.mask = np.load(io.BytesIO(blobs["mask.npy"]))
+    b = pd.read_parquet(io.BytesIO(blobs["beats.parquet"]))
+    res.beats = b if len(b.columns) else None
+    w = pd.read_parquet(io.BytesIO(blobs["windows.parquet"]))
+    res.windows = w if len(w.columns) else None
+    if res.status != "ok" and (res.tensor is None or res.tensor.size == 0):
+        res.tensor = res.mask = None if res.status == "failed" else res.tensor
+    return res

@@ -1,0 +1,94 @@
+"""Parallel runs, shards, resume after a kill, and a real Dask LocalCluster."""
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+
+import pandas as pd
+import pytest
+
+from prep.check import check_dataset
+from prep.dataset import run
+from prep.export import TABLE_FILES, TENSOR_FILES
+
+from .conftest import DEMO, ROOT
+
+
+def _bytes(d):
+    return {f: (d / f).read_bytes() for f in TENSOR_FILES + TABLE_FILES}
+
+
+def test_two_workers_same_bytes_as_one(demo_run, tmp_path):
+    out1, _ = demo_run
+    run([DEMO], tmp_path / "w2", workers=2)
+    assert _bytes(out1) == _bytes(tmp_path / "w2")
+
+
+def test_resume_reuses_only_unchanged_committed_shards(tmp_path, monkeypatch):
+    src = tmp_path / "in"
+    shutil.copytree(DEMO, src)
+    out = tmp_path / "out"
+    run([src], out)
+    first = _bytes(out)
+    import prep.dataset as D
+    calls = []
+    real = D._shard_task
+    monkeypatch.setattr(D, "_shard_task", lambda t: calls.append(t[0].name) or real(t))
+    run([src], out)                              # same command: nothing redone
+    assert calls == [] and _bytes(out) == first
+    (src / "night03.atr").unlink()               # one input changed
+    run([src], out)
+    assert calls == ["night03"]
+    # a shard whose files were tampered with is not trusted
+    shard = next((out / ".shards").glob("night01-*"))
+    (shard / "beats.parquet").write_bytes(b"junk")
+    run([src], out)
+    assert calls == ["night03", "night01"]
+    assert check_dataset(out) == []
+
+
+def test_different_config_refused_on_a_killed_run(tmp_path):
+    from prep.config import Config
+    from prep.errors import ConfigError
+    out = tmp_path / "out"
+    (out / ".shards").mkdir(parents=True)
+    (out / ".shards" / "RUN.json").write_text(json.dumps({"config_sha256": "something else"}))
+    with pytest.raises(ConfigError, match="another configuration"):
+        run([DEMO / "night01.hea"], out, config=Config())
+
+
+def test_sigkill_mid_run_then_resume_gives_the_same_dataset(demo_run, tmp_path):
+    out, _ = demo_run
+    target = tmp_path / "killed"
+    code = ("import sys; from prep.dataset import run; "
+            f"run([{str(DEMO)!r}], {str(target)!r}, workers=1)")
+    env = {**os.environ, "BEATMILL_WORKERS": "1"}
+    p = subprocess.Popen([sys.executable, "-c", code], cwd=ROOT, env=env)
+    deadline = time.time() + 120
+    while time.time() < deadline:       # kill once some shards are committed, before the end
+        commits = list((target / ".shards").glob("*/COMMIT.json")) if target.exists() else []
+        if len(commits) >= 2:
+            break
+        time.sleep(0.05)
+    p.send_signal(signal.SIGKILL)
+    p.wait()
+    assert not (target / "manifest.json").exists() or check_dataset(target) == []
+    run([DEMO], target)                  # same command again: resumes
+    assert _bytes(target) == _bytes(out)
+    assert check_dataset(target) == []
+
+
+def test_dask_local_cluster_two_workers(demo_run, tmp_path):
+    pytest.importorskip("distributed", reason="dask.distributed not installed (optional extra)")
+    from dask.distributed import Client, LocalCluster
+    out, _ = demo_run
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                      dashboard_address=None) as cluster, Client(cluster) as client:
+        assert len(client.scheduler_info()["workers"]) == 2
+        run([DEMO], tmp_path / "dask", dask=cluster.scheduler_address,
+            shards=str(tmp_path / "shared-shards"))
+    assert _bytes(tmp_path / "dask") == _bytes(out)
+    assert len(list((tmp_path / "shared-shards").glob("*/COMMIT.json"))) == 7
