@@ -15,9 +15,9 @@ import pandas as pd
 
 from . import __version__
 from .config import Config
-from .errors import BeatmillError, ConfigError
-from .export import (MANIFEST, TABLE_FILES, TENSOR_FILES, environment, sha256_path, write_manifest,
-                     write_npy, write_parquet)
+from .errors import ConfigError
+from .export import (MANIFEST, TABLE_FILES, TENSOR_FILES, NpyWriter, environment, sha256_path,
+                     write_manifest, write_npy, write_parquet)
 from .leads import default_axis, resolve_axis
 from . import reasons as reasons_mod
 from .labels import AAMI_CLASSES, UNLABELED, load_mapping
@@ -147,7 +147,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         def alloc(name, shape, dtype):
             if int(np.prod(shape)) == 0:
                 return np.zeros(shape, dtype)
-            return np.lib.format.open_memmap(staging / name, mode="w+", dtype=dtype, shape=shape)
+            return NpyWriter(staging / name, shape, dtype)
 
         a = assemble(results, cfg, axis, [str(s) for s in sources], [str(s.path) for s in found],
                      mapping, pmap, extra, alloc=alloc)
@@ -459,11 +459,11 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
 
 def write_assembled(out: Path, a: Assembled) -> None:
     """Write an assembled dataset; the manifest, holding every file's SHA-256, comes last.
-    Tensors already memory-mapped into ``out`` (see :func:`assemble`) are flushed, not copied."""
+    Tensors already streamed into ``out`` (see :func:`assemble`) are closed, not copied."""
     for name, arr in (("beats.npy", a.beats), ("lead_mask.npy", a.lead_mask),
                       ("norm_center.npy", a.norm_center), ("norm_scale.npy", a.norm_scale)):
-        if isinstance(arr, np.memmap) and Path(arr.filename).resolve() == (out / name).resolve():
-            arr.flush()
+        if isinstance(arr, NpyWriter) and arr.path.resolve() == (out / name).resolve():
+            arr.close()
         else:
             write_npy(out / name, arr)
     write_parquet(out / "beats.parquet", a.table)

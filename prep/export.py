@@ -93,3 +93,30 @@ def environment() -> dict[str, str]:
         except PackageNotFoundError:
             out[pkg] = "not installed"
     return out
+
+
+class NpyWriter:
+    """A .npy file written slice by slice with plain writes (no memory map), so the memory a
+    consolidation needs does not grow with the dataset. Supports ``w[a:b] = rows`` only."""
+
+    def __init__(self, path: Path, shape: tuple, dtype):
+        self.path, self.shape, self.dtype = Path(path), tuple(shape), np.dtype(dtype)
+        self.row = int(np.prod(self.shape[1:])) * self.dtype.itemsize
+        self._fh = open(self.path, "wb")
+        np.lib.format.write_array_header_1_0(
+            self._fh, {"descr": np.lib.format.dtype_to_descr(self.dtype), "fortran_order": False,
+                       "shape": self.shape})
+        self.offset = self._fh.tell()
+        self._fh.truncate(self.offset + self.row * self.shape[0])
+
+    def __setitem__(self, key: slice, value) -> None:
+        start = key.start or 0
+        data = np.ascontiguousarray(value, dtype=self.dtype)
+        self._fh.seek(self.offset + start * self.row)
+        self._fh.write(data.tobytes())
+
+    def close(self) -> None:
+        if not self._fh.closed:
+            self._fh.flush()
+            os.fsync(self._fh.fileno())
+            self._fh.close()

@@ -7,7 +7,6 @@ import subprocess
 import sys
 import time
 
-import pandas as pd
 import pytest
 
 from prep.check import check_dataset

@@ -238,7 +238,7 @@ def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
     typer.echo(f"time      {e['r_time_s']:.3f} s (sample {e['r_sample']})")
     typer.echo(f"label     {e['label'] or '-'} (class {e['class']})")
     typer.echo(f"leads     {', '.join(e['leads_used']) or '-'} used")
-    typer.echo(f"status    " + (f"kept, tensor row {e['tensor_index']}" if e["included"]
+    typer.echo("status    " + (f"kept, tensor row {e['tensor_index']}" if e["included"]
                                 else "excluded"))
     for x in e["reasons"]:
         ev = ""
