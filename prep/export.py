@@ -1,7 +1,6 @@
 """Writing a dataset folder: tensors, tables and the manifest, each file written atomically."""
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import platform
@@ -17,12 +16,7 @@ TABLE_FILES = ("beats.parquet", "leads.parquet", "records.parquet", "windows.par
 MANIFEST = "manifest.json"
 
 
-def sha256_path(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
+from .read import sha256_file as sha256_path  # noqa: E402  (one implementation of file hashing)
 
 
 def _atomic(path: Path, write) -> None:
