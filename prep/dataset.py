@@ -54,7 +54,9 @@ def _peek_leads(src: Source, cfg: Config) -> list[str] | None:
 
             from .leads import canonical_lead, classify_channel
             h = wfdb.rdheader(str(src.path))
-            names = h.sig_name or []
+            if not h.sig_name:  # a multi-segment header names no signal: read the record
+                return read_source(src, cfg.read).leads
+            names = h.sig_name
             units = h.units or [""] * len(names)
             return [canonical_lead(n) for n, u in zip(names, units) if classify_channel(n, u)[0]]
         except Exception:

@@ -27,15 +27,20 @@ def _squeeze(name: str) -> str:
     return re.sub(r"[\s_\-]+", "", name.strip().lower())
 
 
+def _strip_ecg_prefix(key: str) -> str:
+    for prefix in ("ecg", "ekg"):
+        if key.startswith(prefix) and key[len(prefix):] in _ALIASES and not key[len(prefix):].isdigit():
+            return key[len(prefix):]
+    return key
+
+
 def canonical_lead(name: str) -> str:
     """Canonical lead name: the standard 12 (and MLII, DII... aliases) mapped, others stripped.
 
     >>> canonical_lead("MLII"), canonical_lead("avl"), canonical_lead("V5"), canonical_lead("ECG1")
     ('II', 'aVL', 'V5', 'ECG1')
     """
-    key = _squeeze(name)
-    if key.startswith("ecg") and key[3:] in _ALIASES and not key[3:].isdigit():
-        key = key[3:]  # "ECG II" -> II; "ECG1" stays a plain channel name
+    key = _strip_ecg_prefix(_squeeze(name))  # "ECG II" -> II; "ECG1" stays a channel name
     return _ALIASES.get(key, name.strip())
 
 

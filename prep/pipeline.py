@@ -123,6 +123,9 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
 
     # per-lead detection, a second detector, and window grades
     dets = {d.lead: d for d in detect_leads(y, fs, usable, cfg.rpeaks)}
+    for d in dets.values():  # no beat inside a gap: the bridged line there is not signal
+        inside = ~gap[d.lead][d.r]
+        d.r, d.conf = d.r[inside], d.conf[inside]
     other = {j: second_detector(y[j], fs) for j in dets} if cfg.windows.enabled else {}
     empty = np.zeros(0, np.int64)
     win_tables, grades, noise_grades = [], {}, {}

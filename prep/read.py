@@ -62,15 +62,20 @@ def find_sources(items: list[str | Path]) -> tuple[list[Source], list[str]]:
     for item in items:
         p = Path(item)
         if p.is_dir():
-            hits = sorted(set(p.rglob("*.hea")) | set(p.rglob("*.csv")))
+            hits = sorted(set(p.rglob("*.hea")) | set(p.rglob("*.csv")) | set(p.rglob("*.edf")) |
+                          set(p.rglob("*.EDF")))
+            hits = [h for h in hits if not h.name.endswith(".annotations.csv")]
             if not hits:
-                problems.append(f"folder {p} holds no WFDB header (.hea) or CSV file")
+                problems.append(f"folder {p} holds no WFDB header (.hea), EDF or CSV file")
             for h in hits:
-                found.append(("wfdb" if h.suffix == ".hea" else "csv", h))
+                kind = {".hea": "wfdb", ".csv": "csv"}.get(h.suffix.lower(), "edf")
+                found.append((kind, h))
         elif p.suffix.lower() == ".hea" and p.exists():
             found.append(("wfdb", p))
         elif p.suffix.lower() == ".csv" and p.exists():
             found.append(("csv", p))
+        elif p.suffix.lower() in (".edf", ".bdf") and p.exists():
+            found.append(("edf", p))
         elif p.with_suffix(p.suffix + ".hea").exists() if p.suffix else p.with_suffix(".hea").exists():
             found.append(("wfdb", Path(str(p) + ".hea")))
         else:
@@ -81,13 +86,13 @@ def find_sources(items: list[str | Path]) -> tuple[list[Source], list[str]]:
     # multi-segment WFDB layouts: segment headers named by a master header are not records
     segment_names = _segment_names([b for k, b in bases if k == "wfdb"])
     bases = [(k, b) for k, b in bases if not (k == "wfdb" and b in segment_names)]
-    names = [b.stem if k == "csv" else b.name for k, b in bases]
+    names = [b.name if k == "wfdb" else b.stem for k, b in bases]
     dup = {n for n in names if names.count(n) > 1}
     if dup:
         import os
         root = Path(os.path.commonpath([str(b.parent) for _, b in bases]))
-        names = [str((b.with_suffix("") if k == "csv" else b).relative_to(root)) if n in dup else n
-                 for (k, b), n in zip(bases, names)]
+        names = [str((b if k == "wfdb" else b.with_suffix("")).relative_to(root)) if n in dup
+                 else n for (k, b), n in zip(bases, names)]
     return [Source(k, b, n) for (k, b), n in zip(bases, names)], problems
 
 
@@ -110,9 +115,10 @@ def _segment_names(bases: list[Path]) -> set[Path]:
 def source_inputs(src: Source, cfg: ReadConfig) -> list[tuple[str, str]]:
     """(file name, SHA-256) of every file a source's record is read from, without decoding it:
     WFDB header, signal files named by the header, annotation file; CSV and its sidecar."""
-    if src.kind == "csv":
-        files = [src.path] + ([src.path.with_suffix(".json")]
-                              if src.path.with_suffix(".json").exists() else [])
+    extra = [_annotation_csv(src)] if _annotation_csv(src).exists() else []
+    if src.kind in ("csv", "edf"):
+        side = [src.path.with_suffix(".json")] if src.kind == "csv" else []
+        files = [src.path] + [f for f in side if f.exists()] + extra
         return [(f.name, sha256_file(f)) for f in files]
     base = src.path
     files = {Path(str(base) + ".hea")}
@@ -126,13 +132,54 @@ def source_inputs(src: Source, cfg: ReadConfig) -> list[tuple[str, str]]:
     except OSError:
         pass
     files.add(Path(str(base) + "." + cfg.annotation_extension))
+    files.update(extra)
     return [(f.name, sha256_file(f)) for f in sorted(files) if f.is_file()]
 
 
 def read_source(src: Source, cfg: ReadConfig) -> Record:
     if src.kind == "wfdb":
-        return read_wfdb(src.path, cfg, name=src.name)
-    return read_csv(src.path, cfg, name=src.name)
+        rec = read_wfdb(src.path, cfg, name=src.name)
+    elif src.kind == "edf":
+        from .edf import read_edf
+        rec = read_edf(src.path, name=src.name, inputs=source_inputs(src, cfg))
+    else:
+        rec = read_csv(src.path, cfg, name=src.name)
+    if rec.annotations is None:
+        rec.annotations = read_annotation_csv(_annotation_csv(src), rec.fs, rec.n_samples)
+    return rec
+
+
+def _annotation_csv(src: Source) -> Path:
+    base = src.path if src.kind == "wfdb" else src.path.with_suffix("")
+    return Path(str(base) + ".annotations.csv")
+
+
+def read_annotation_csv(path: Path, fs: float, n_samples: int) -> Annotations | None:
+    """Reference annotations from a CSV with columns ``symbol`` and ``sample`` or ``time_s``
+    (optional ``aux``), for databases that ship them that way; None when the file is absent."""
+    import pandas as pd
+
+    if not path.exists():
+        return None
+    try:
+        df = pd.read_csv(path)
+    except Exception as exc:
+        raise RecordError(f"annotation CSV cannot be parsed ({type(exc).__name__}: {exc})",
+                          path=str(path), stage="read") from None
+    if "symbol" not in df or not ({"sample", "time_s"} & set(df.columns)):
+        raise RecordError("annotation CSV needs a 'symbol' column and a 'sample' or 'time_s' "
+                          "column", path=str(path), stage="read")
+    if "sample" in df:
+        samp = pd.to_numeric(df["sample"], errors="coerce")
+    else:
+        samp = (pd.to_numeric(df["time_s"], errors="coerce") * fs).round()
+    ok = samp.notna().to_numpy()
+    samp = samp.to_numpy()[ok].astype(np.int64)
+    sym = df["symbol"].astype(str).str.strip().to_numpy(dtype=object)[ok]
+    aux = (df["aux"].fillna("").astype(str).to_numpy(dtype=object)[ok] if "aux" in df
+           else np.full(samp.size, "", dtype=object))
+    inside = (samp >= 0) & (samp < n_samples)
+    return Annotations(samp[inside], sym[inside], aux=aux[inside], source=path.name)
 
 
 def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | None = None) -> Record:
@@ -155,6 +202,9 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
                           "header and signal files", path=shown, stage="read") from None
     fs = float(rec.fs or 0)
     _check_rate(fs, shown)
+    spf = [int(x or 1) for x in (rec.samps_per_frame or [1])]
+    if any(x != 1 for x in spf):
+        return _read_multirate(base, rec, spf, cfg, name, shown, warnings)
     sig = rec.p_signal
     if sig is None or sig.size == 0:
         raise RecordError("the record holds no samples", path=shown, stage="read")
@@ -182,6 +232,36 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
                   lead_names=[names[i] for i in keep], leads=[canonical_lead(names[i]) for i in keep],
                   units=["mV"] * len(keep), inputs=inputs, skipped=skipped, annotations=ann,
                   comments=list(rec.comments or []), path=shown, channels=keep)
+
+
+def _read_multirate(base: Path, rec0, spf: list[int], cfg: ReadConfig, name, shown, warnings):
+    """A record whose signals have different rates: the ECG leads at the highest ECG rate are
+    read at that rate (every sample), the other channels are skipped with the reason."""
+    import wfdb
+
+    rec = wfdb.rdrecord(str(base), physical=True, smooth_frames=False, return_res=64)
+    fs0 = float(rec.fs)
+    names = [str(n) for n in rec.sig_name]
+    units = [str(u or "") for u in rec.units]
+    ecg = [i for i in range(len(names)) if classify_channel(names[i], units[i])[0]]
+    skipped = [(names[i], classify_channel(names[i], units[i])[1]) for i in range(len(names))
+               if i not in ecg]
+    if not ecg:
+        raise RecordError("no ECG channel", path=shown, stage="read")
+    top = max(spf[i] for i in ecg)
+    keep = [i for i in ecg if spf[i] == top]
+    skipped += [(names[i], f"channel '{names[i]}' is sampled at {fs0 * spf[i]:g} Hz, not the ECG "
+                           f"rate {fs0 * top:g} Hz") for i in ecg if spf[i] != top]
+    data = np.vstack([np.asarray(rec.e_p_signal[i], dtype=np.float64) * scale_to_mv(units[i])
+                      for i in keep])
+    ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1])
+    if ann is not None:  # WFDB annotation times count frames; the ECG rate is top x frame rate
+        ann.sample = ann.sample * top
+    return Record(name=name or base.name, fs=fs0 * top, signals=data, warnings=warnings,
+                  lead_names=[names[i] for i in keep], leads=[canonical_lead(names[i]) for i in keep],
+                  units=["mV"] * len(keep), inputs=source_inputs(Source("wfdb", base, base.name), cfg),
+                  skipped=skipped, annotations=ann, comments=list(rec.comments or []), path=shown,
+                  channels=keep)
 
 
 # bytes per sample of the WFDB storage formats whose size is fixed (WFDB signal file formats)

@@ -1,0 +1,129 @@
+"""Recording formats: EDF/EDF+ (incl. EDF+D built from the specification), WFDB multi-segment
+and multi-rate records, CSV annotations, and 12-lead records."""
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+import wfdb
+
+from prep.dataset import run
+from prep.edf import parse_tals, read_edf
+from prep.read import read_wfdb
+
+from .conftest import DEMO, ref_path
+from .edf_by_hand import write_edf_plus
+
+
+def _demo(name="night02"):
+    return wfdb.rdrecord(str(DEMO / name)), wfdb.rdann(str(DEMO / name), "atr")
+
+
+def test_edf_plus_written_by_the_reader_library(tmp_path):
+    pyedflib = pytest.importorskip("pyedflib")
+    r, a = _demo()
+    path = tmp_path / "patch.edf"
+    heads = [{"label": lab, "dimension": "uV", "sample_frequency": 250, "physical_max": 5000,
+              "physical_min": -5000, "digital_max": 32767, "digital_min": -32768,
+              "transducer": "", "prefilter": ""} for lab in ("ECG II", "ECG V5")]
+    heads.append({"label": "Resp", "dimension": "NU", "sample_frequency": 25,
+                  "physical_max": 100, "physical_min": -100, "digital_max": 32767,
+                  "digital_min": -32768, "transducer": "", "prefilter": ""})
+    with pyedflib.EdfWriter(str(path), 3, file_type=pyedflib.FILETYPE_EDFPLUS) as f:
+        f.set_number_of_annotation_signals(4)  # room for more than one beat per data record
+        f.setSignalHeaders(heads)
+        f.writeSamples([r.p_signal[:, 0] * 1000, r.p_signal[:, 1] * 1000,
+                        np.zeros(r.p_signal.shape[0] // 10)])
+        for s, y in zip(a.sample, a.symbol):
+            f.writeAnnotation(s / 250.0, -1, y)
+    rec = read_edf(path)
+    assert rec.leads == ["II", "V5"] and rec.fs == 250.0
+    assert [n for n, _ in rec.skipped] == ["Resp"]
+    np.testing.assert_allclose(rec.signals[0], r.p_signal[:, 0], atol=2e-4)  # 16-bit over 10 mV
+    np.testing.assert_array_equal(rec.annotations.sample, a.sample)
+    s = run([path], tmp_path / "out")
+    t = pd.read_parquet(tmp_path / "out" / "beats.parquet")
+    assert s.exit_code == 0 and (t[t.included].label == "V").sum() == (np.array(a.symbol) == "V").sum()
+
+
+def test_edf_plus_d_jumps_become_gaps(tmp_path):
+    r, _ = _demo("night01")
+    onsets = list(range(60)) + [k + 30 for k in range(60, 180)]   # 30 s missing after 60 s
+    path = tmp_path / "night.edf"
+    write_edf_plus(path, r.p_signal.T * 1000, ["ECG II", "ECG V5"], 250, 1, onsets)
+    rec = read_edf(path)
+    assert rec.signals.shape == (2, 210 * 250)
+    assert np.isnan(rec.signals[:, 60 * 250:90 * 250]).all()
+    assert not np.isnan(rec.signals[:, :60 * 250]).any()
+    np.testing.assert_allclose(rec.signals[0, 90 * 250:], r.p_signal[60 * 250:, 0], atol=1e-4)
+    run([path], tmp_path / "out")
+    t = pd.read_parquet(tmp_path / "out" / "beats.parquet")
+    # no beat inside the gap, and beats whose window touches it are excluded
+    assert not ((t.r_time_s > 60.4) & (t.r_time_s < 89.6)).any()
+    assert t.reasons.str.contains("in_gap").sum() >= 1
+
+
+def test_tal_parser():
+    # EDF+ specification: "+onset[\x15duration]\x14text\x14...\x00"
+    assert parse_tals(b"+0\x14\x14\x00+1.5\x150.5\x14Lights off\x14\x00") == [
+        (0.0, 0.0, [""]), (1.5, 0.5, ["Lights off"])]
+
+
+def test_wfdb_multisegment_record(tmp_path):
+    r, _ = _demo("night01")
+    for k, (a, b) in enumerate(((0, 22500), (22500, 45000))):
+        wfdb.wrsamp(f"seg_{k}", fs=250, units=["mV", "mV"], sig_name=["II", "V5"],
+                    p_signal=r.p_signal[a:b], fmt=["16", "16"], write_dir=str(tmp_path))
+    (tmp_path / "multi.hea").write_text("multi/2 2 250 45000\nseg_0 22500\nseg_1 22500\n")
+    rec = read_wfdb(tmp_path / "multi")
+    assert rec.signals.shape == (2, 45000)
+    s = run([tmp_path], tmp_path / "out")
+    recs = pd.read_parquet(tmp_path / "out" / "records.parquet")
+    assert recs.record.tolist() == ["multi"] and s.exit_code == 0  # segments are not records
+
+
+def test_wfdb_several_sampling_rates(tmp_path):
+    r, _ = _demo("night01")
+    n = r.p_signal.shape[0]
+    # ECG at 250 Hz (2 samples per frame at a 125 Hz frame rate), respiration at 125 Hz
+    ecg = r.p_signal[:, 0]
+    resp = np.sin(np.arange(n // 2) / 50.0)
+    # written by hand from the WFDB header format: "16x2" = format 16, 2 samples per frame
+    frames = np.column_stack([np.round(ecg[0::2] * 1000), np.round(ecg[1::2] * 1000),
+                              np.round(resp * 1000)]).astype("<i2")
+    (tmp_path / "mixed.dat").write_bytes(frames.tobytes())
+    (tmp_path / "mixed.hea").write_text(
+        f"mixed 2 125 {n // 2}\nmixed.dat 16x2 1000/mV 16 0 0 0 0 ECG\n"
+        "mixed.dat 16 1000/NU 16 0 0 0 0 RESP\n")
+    got = read_wfdb(tmp_path / "mixed")
+    assert got.fs == 250 and got.signals.shape == (1, n)
+    np.testing.assert_allclose(got.signals[0], ecg, atol=1e-3)
+    assert got.skipped[0][0] == "RESP"
+
+
+def test_csv_annotations(tmp_path):
+    r, a = _demo()
+    df = pd.DataFrame(r.p_signal, columns=r.sig_name)
+    df.to_csv(tmp_path / "p.csv", index=False)
+    pd.DataFrame({"time_s": a.sample / 250.0, "symbol": a.symbol}).to_csv(
+        tmp_path / "p.annotations.csv", index=False)
+    run([tmp_path / "p.csv"], tmp_path / "out", csv_fs=250)
+    t = pd.read_parquet(tmp_path / "out" / "beats.parquet")
+    assert (t.label == "V").sum() == (np.array(a.symbol) == "V").sum()
+    rec = pd.read_parquet(tmp_path / "out" / "records.parquet")
+    assert "p.annotations.csv" in [x["file"] for x in rec.inputs[0]]
+
+
+@pytest.mark.refdata
+def test_twelve_lead_records(tmp_path):
+    # LUDB (500 Hz, 10 s, 12 leads) and PTB s0010_re (1000 Hz, 12 standard + 3 Frank leads)
+    ludb, ptb = ref_path("ludb", "1"), ref_path("ptbdb", "s0010_re")
+    s = run([str(ludb), str(ptb)], tmp_path / "out")
+    m = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    std = ["I", "II", "III", "aVR", "aVL", "aVF", "V1", "V2", "V3", "V4", "V5", "V6"]
+    assert m["lead_axis"] == std and m["tensor"]["shape"][1] == 12
+    x = np.load(tmp_path / "out" / "beats.npy")
+    assert x.shape[1:] == (12, 256) and x.shape[0] >= 40
+    leads = pd.read_parquet(tmp_path / "out" / "leads.parquet")
+    assert set(leads[~leads.in_axis].lead) == {"vx", "vy", "vz"}  # Frank leads: only on request
+    assert s.exit_code == 0
