@@ -305,6 +305,27 @@ def leads(inputs: List[str] = typer.Argument(..., help="Records or folders to su
     raise typer.Exit(1 if broken or failed else 0)
 
 
+@app.command()
+def report(run_dir: Path = typer.Argument(..., help="A dataset folder."),
+           out: Optional[Path] = typer.Option(None, "--out", "-o",
+                                              help="HTML file to write (default RUN_DIR/report.html).")
+           ) -> None:
+    """Write a self-contained HTML report to read before training on a dataset.
+
+    Example:
+
+      beatmill report runs/demo
+    """
+    from ..errors import BeatmillError
+    from ..report import write_report
+
+    try:
+        path = write_report(run_dir, out)
+    except BeatmillError as exc:
+        _fail(str(exc))
+    typer.echo(f"wrote {path}")
+
+
 def main() -> None:
     try:
         app()

@@ -1,0 +1,61 @@
+"""The HTML report: self-contained, complete, and rendered by a real headless browser."""
+import re
+import shutil
+import subprocess
+
+import numpy as np
+import pandas as pd
+import pytest
+from typer.testing import CliRunner
+
+from prep.cli.main import app
+from prep.check import check_dataset
+
+CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                  "--disable-background-networking", "--disable-component-update",
+                  "--disable-sync"]
+
+
+@pytest.fixture(scope="module")
+def report(demo_run, tmp_path_factory):
+    out, _ = demo_run
+    run = tmp_path_factory.mktemp("rep") / "run"
+    shutil.copytree(out, run)
+    r = CliRunner().invoke(app, ["report", str(run)])
+    assert r.exit_code == 0, r.output
+    return run, run / "report.html"
+
+
+def test_report_is_self_contained_and_complete(report):
+    run, page = report
+    text = page.read_text()
+    assert not re.search(r'(src|href)="(https?:)?//', text)        # no network needed
+    imgs = re.findall(r'<img src="([^"]+)"', text)
+    assert imgs and all(s.startswith("data:image/png;base64,") for s in imgs)
+    for section in ("Counts", "Signal quality over time", "Kept beats per class",
+                    "Excluded beats in context", "Rhythm", "Provenance"):
+        assert f"<h2>{section}</h2>" in text
+    t = pd.read_parquet(run / "beats.parquet")
+    some = t[t.reasons.str.contains("high_freq_noise")].beat_id.iloc[0]
+    assert some in text                                            # ready for 'beatmill why'
+    assert "not a medical device" in text
+    assert check_dataset(run) == []                                # check ignores report.html
+
+
+def test_report_renders_in_a_headless_browser(report, tmp_path):
+    chromium = shutil.which("chromium") or shutil.which("chromium-browser")
+    if not chromium:
+        pytest.skip("no chromium browser installed (Debian package 'chromium'; .ci/run installs it)")
+    _, page = report
+    shot = tmp_path / "shot.png"
+    args = [chromium, *CHROMIUM_FLAGS, f"--user-data-dir={tmp_path / 'profile'}"]
+    dom = subprocess.run(args + ["--dump-dom", page.as_uri()], capture_output=True, text=True,
+                         timeout=120)
+    assert "<h1>beatmill dataset report</h1>" in dom.stdout
+    assert "ERR_FILE_NOT_FOUND" not in dom.stderr and "Uncaught" not in dom.stderr
+    subprocess.run(args + [f"--screenshot={shot}", "--window-size=1280,1600", page.as_uri()],
+                   capture_output=True, timeout=120)
+    import matplotlib.image as mpimg
+    img = mpimg.imread(shot)
+    assert img.shape[0] >= 1000 and img.shape[1] >= 1200
+    assert float(np.std(img[..., :3])) > 0.05                     # not a blank page
