@@ -312,11 +312,23 @@ class WindowsConfig:
                              "of keeping them with the flag noisy_window.", "design choice")
 
 
+@dataclass(frozen=True)
+class ChunksConfig:
+    chunk_minutes: float = _f(60.0, "WFDB records longer than this are processed in chunks of this "
+                              "length (rounded to whole quality windows), so memory stays bounded.",
+                              "design choice: an hour of 12-lead 1 kHz signal is ~350 MB in float64",
+                              lo=1.0, hi=10000.0)
+    overlap_s: float = _f(60.0, "Signal read on each side of a chunk (rounded up to whole quality "
+                          "windows) and then dropped: longer than the filters' settling (about "
+                          "5 s), the detector's reference (16 beats) and the 31-beat template.",
+                          "design choice", lo=10.0, hi=3600.0)
+
+
 SECTIONS: dict[str, type] = {
     "read": ReadConfig, "leads": LeadsConfig, "powerline": PowerlineConfig,
     "bandpass": BandpassConfig, "baseline": BaselineConfig, "rpeaks": RpeaksConfig,
     "segment": SegmentConfig, "resample": ResampleConfig, "normalize": NormalizeConfig,
-    "quality": QualityConfig, "windows": WindowsConfig, "labels": LabelsConfig, "split": SplitConfig,
+    "quality": QualityConfig, "windows": WindowsConfig, "chunks": ChunksConfig, "labels": LabelsConfig, "split": SplitConfig,
 }
 
 
@@ -335,6 +347,7 @@ class Config:
     normalize: NormalizeConfig = field(default_factory=NormalizeConfig)
     quality: QualityConfig = field(default_factory=QualityConfig)
     windows: WindowsConfig = field(default_factory=WindowsConfig)
+    chunks: ChunksConfig = field(default_factory=ChunksConfig)
     labels: LabelsConfig = field(default_factory=LabelsConfig)
     split: SplitConfig = field(default_factory=SplitConfig)
 

@@ -173,8 +173,9 @@ def _inputs_or_empty(src: Source, cfg: Config) -> list:
 
 def _shard_task(args) -> str:
     """Process one record and write its shard (in a worker process or on a Dask worker)."""
+    from .chunks import process_source
     src, cfg, axis, mapping, root, key, inputs = args
-    res = safe_process(lambda: read_source(src, cfg.read), src.name, cfg, axis, mapping)
+    res = process_source(src, cfg, axis, mapping)
     if inputs:
         res.inputs = [tuple(x) for x in inputs]
     write_shard(root, res, key, inputs)

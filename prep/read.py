@@ -182,18 +182,24 @@ def read_annotation_csv(path: Path, fs: float, n_samples: int) -> Annotations | 
     return Annotations(samp[inside], sym[inside], aux=aux[inside], source=path.name)
 
 
-def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | None = None) -> Record:
-    """Read a WFDB record in physical units (mV) with its reference annotations, if any."""
+def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | None = None,
+              sampfrom: int = 0, sampto: int | None = None) -> Record:
+    """Read a WFDB record in physical units (mV) with its reference annotations, if any.
+
+    ``sampfrom``/``sampto`` read one stretch only (annotation samples then count from
+    ``sampfrom``); long records are processed in such chunks.
+    """
     import wfdb
 
     base = Path(base)
     hea = Path(str(base) + ".hea")
     shown = str(hea)
     warnings: list[str] = []
-    sampto = _check_header(base, shown, warnings)
+    safe = _check_header(base, shown, warnings)
+    end = min(x for x in (safe, sampto) if x) if (safe or sampto) else None
     try:
-        rec = wfdb.rdrecord(str(base), physical=True, return_res=64,
-                            **({"sampto": sampto} if sampto else {}))
+        rec = wfdb.rdrecord(str(base), physical=True, return_res=64, sampfrom=int(sampfrom),
+                            **({"sampto": int(end)} if end else {}))
     except FileNotFoundError as exc:
         raise RecordError(f"a file of the record is missing ({exc.filename or exc}); restore it or "
                           "leave the record out", path=shown, stage="read") from None
@@ -223,7 +229,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
                           path=shown, stage="read")
     data = np.ascontiguousarray(sig[:, keep].T, dtype=np.float64)
     data *= np.array([scale_to_mv(units[i]) for i in keep])[:, None]
-    ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1])
+    ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1], offset=sampfrom)
     inputs = source_inputs(Source("wfdb", base, name or base.name), cfg)
     bad = ~np.isfinite(data)
     if bad.any():
@@ -349,7 +355,8 @@ def _check_header(base: Path, shown: str, warnings: list[str]) -> int | None:
     return None
 
 
-def _read_wfdb_annotations(base: Path, ext: str, n_samples: int) -> Annotations | None:
+def _read_wfdb_annotations(base: Path, ext: str, n_samples: int,
+                           offset: int = 0) -> Annotations | None:
     import wfdb
 
     path = Path(str(base) + "." + ext)
@@ -360,7 +367,7 @@ def _read_wfdb_annotations(base: Path, ext: str, n_samples: int) -> Annotations 
     except Exception as exc:
         raise RecordError(f"annotation file cannot be read ({type(exc).__name__}: {exc}); remove "
                           "or repair it", path=str(path), stage="read") from None
-    sample = np.asarray(a.sample, dtype=np.int64)
+    sample = np.asarray(a.sample, dtype=np.int64) - int(offset)
     symbol = np.asarray(a.symbol, dtype=object)
     aux = np.asarray(a.aux_note if a.aux_note is not None else [""] * len(sample), dtype=object)
     sub = np.asarray(a.subtype if a.subtype is not None else np.zeros(len(sample)), dtype=np.int64)

@@ -62,9 +62,10 @@ def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) ->
             "duration_s": res.duration_s, "n_leads": res.n_leads, "inputs": res.inputs,
             "comments": res.comments, "warnings": res.warnings, "leads": res.leads,
             "logs": [lg.to_dict() for lg in res.logs]}
+    tensor = res.tensor if res.tensor is not None else np.zeros((0, 0, 0), np.float32)
+    hashes = {"tensor.npy": _write_npy_hashed(fs, f"{d}/tensor.npy", tensor.astype(np.float32,
+                                                                                     copy=False))}
     blobs = {
-        "tensor.npy": _npy((res.tensor if res.tensor is not None else np.zeros((0, 0, 0)))
-                           .astype(np.float32)),
         "mask.npy": _npy(res.mask if res.mask is not None else np.zeros((0, 0), bool)),
         "beats.parquet": _parquet(res.beats if res.beats is not None else pd.DataFrame()),
         "leads.parquet": _parquet(pd.DataFrame(res.leads)),
@@ -74,10 +75,34 @@ def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) ->
     for name, data in blobs.items():
         with fs.open(f"{d}/{name}", "wb") as fh:
             fh.write(data)
+    hashes.update({k: hashlib.sha256(v).hexdigest() for k, v in blobs.items()})
     commit = {"record": res.name, "config_sha256": config_hash, "inputs": [list(x) for x in inputs],
-              "files": {k: hashlib.sha256(v).hexdigest() for k, v in blobs.items()}}
+              "files": hashes}
     with fs.open(f"{d}/{COMMIT}", "wb") as fh:
         fh.write(json.dumps(commit, sort_keys=True).encode())
+
+
+class _HashingWriter:
+    """A file wrapper that hashes what passes through it (the tensor is never copied to bytes)."""
+
+    def __init__(self, fh):
+        self.fh, self.h = fh, hashlib.sha256()
+
+    def write(self, data) -> int:
+        mv = memoryview(data)
+        self.h.update(mv)
+        return self.fh.write(mv)
+
+
+def _write_npy_hashed(fs, path: str, arr: np.ndarray) -> str:
+    with fs.open(path, "wb") as fh:
+        w = _HashingWriter(fh)
+        arr = np.ascontiguousarray(arr)
+        np.lib.format.write_array_header_1_0(w, np.lib.format.header_data_from_array_1_0(arr))
+        step = max(1, (8 << 20) // max(1, arr[:1].nbytes))  # about 8 MB a write
+        for i in range(0, arr.shape[0], step):
+            w.write(arr[i:i + step].tobytes())
+    return w.h.hexdigest()
 
 
 def _plain(o):
