@@ -38,9 +38,11 @@ def process_source(src: Source, cfg: Config, axis: list[str], mapping=None) -> R
     if len(plan) == 1:
         return safe_process(lambda: read_source(src, cfg.read), src.name, cfg, axis, mapping)
     parts = []
+    inputs = source_inputs(src, cfg.read)  # hashed once, not once per chunk
     for lo, a, b, hi in plan:  # one step per chunk
         res = safe_process(lambda: read_wfdb(src.path, cfg.read, name=src.name, sampfrom=lo,
-                                             sampto=hi), src.name, cfg, axis, mapping)
+                                             sampto=hi, inputs=inputs), src.name, cfg, axis,
+                           mapping)
         if res.status == "failed":
             return RecordResult(src.name, "failed", error=f"chunk {a}-{b}: {res.error}")
         parts.append((lo, a, b, res))
@@ -64,7 +66,7 @@ def merge_chunks(src: Source, parts, n: int, fs: float, cfg: Config) -> RecordRe
     """Join chunk results: the core beats and windows of each, renumbered; lead rows combined."""
     first = parts[0][3]
     out = RecordResult(src.name, "ok", fs=fs, duration_s=n / fs, n_leads=first.n_leads,
-                       inputs=source_inputs(src, cfg.read), comments=first.comments)
+                       inputs=first.inputs, comments=first.comments)
     beats, tensors, masks, wins = [], [], [], []
     for lo, a, b, res in parts:
         out.warnings += [w for w in res.warnings if w not in out.warnings]

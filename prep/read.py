@@ -183,11 +183,12 @@ def read_annotation_csv(path: Path, fs: float, n_samples: int) -> Annotations | 
 
 
 def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | None = None,
-              sampfrom: int = 0, sampto: int | None = None) -> Record:
+              sampfrom: int = 0, sampto: int | None = None, inputs=None) -> Record:
     """Read a WFDB record in physical units (mV) with its reference annotations, if any.
 
     ``sampfrom``/``sampto`` read one stretch only (annotation samples then count from
-    ``sampfrom``); long records are processed in such chunks.
+    ``sampfrom``); long records are processed in such chunks. ``inputs``: the files' checksums
+    when the caller has them already (they are not hashed again).
     """
     import wfdb
 
@@ -230,7 +231,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     data = np.ascontiguousarray(sig[:, keep].T, dtype=np.float64)
     data *= np.array([scale_to_mv(units[i]) for i in keep])[:, None]
     ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1], offset=sampfrom)
-    inputs = source_inputs(Source("wfdb", base, name or base.name), cfg)
+    inputs = inputs or source_inputs(Source("wfdb", base, name or base.name), cfg)
     bad = ~np.isfinite(data)
     if bad.any():
         warnings.append(f"{int(bad.sum())} missing or non-finite samples become gaps")
