@@ -357,7 +357,7 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     train_classes = set(cfg.labels.train_classes)
     frames = []
     for k, (r, p) in enumerate(zip(results, patients)):
-        b = r.beats.copy()
+        b = r.beats.copy(deep=False)  # copy-on-write: the record's own table is never changed
         split = split_of.get(p, "")
         b["patient"] = p
         b["split"] = split
@@ -376,12 +376,14 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
             b.loc[hit, "included"] = False
         frames.append(b)
     beats = pd.concat(frames, ignore_index=True) if frames else _empty_beats()
+    del frames
     if "patient" not in beats:
         beats["patient"], beats["split"], beats["_rec"], beats["_local"] = "", "", 0, -1
 
     # ---- global order: split, then patient, then record and time -----------------------
     rank = {"train": 0, "val": 1, "test": 2}
-    kept = beats[beats["included"]].copy()
+    kept = beats.loc[beats["included"], ["split", "patient", "record", "r_sample", "_rec",
+                                         "_local"]].copy()  # only what ordering needs
     kept["_rank"] = kept["split"].map(rank).fillna(3)
     kept = kept.sort_values(["_rank", "patient", "record", "r_sample"], kind="stable")
     beats["tensor_index"] = -1
@@ -389,12 +391,13 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     tensor, mask, center, scale, norm_note = _gather_normalized(results, kept, cfg, n_ax, n_s,
                                                                  alloc)
     ranges = {}
+    kept_split = kept["split"].to_numpy()
     for sname in SPLITS:
-        idx = np.flatnonzero(kept["split"].to_numpy() == sname)
+        idx = np.flatnonzero(kept_split == sname)
         ranges[sname] = [int(idx[0]), int(idx[-1]) + 1] if idx.size else [0, 0]
-    beats = beats.drop(columns=["_rec", "_local"])
     cols = [c for c in BEAT_COLUMNS if c in beats] + ["patient", "split"]
     beats = beats[cols]
+    del kept
     lead_rows = [row for r in results for row in r.leads]
     leads = pd.DataFrame(lead_rows) if lead_rows else pd.DataFrame(
         {c: [] for c in ("record", "lead", "source_name", "used", "reason", "in_axis")})
