@@ -16,7 +16,7 @@ import pandas as pd
 
 from .config import Config
 from .model import StageLog
-from .pipeline import RecordResult, _empty_beats, _main_fault, process_record, safe_process
+from .pipeline import RecordResult, _empty_beats, _main_fault, safe_process
 from .read import Source, read_source, read_wfdb, source_inputs
 
 
@@ -45,8 +45,27 @@ def process_source(src: Source, cfg: Config, axis: list[str], mapping=None) -> R
                            mapping)
         if res.status == "failed":
             return RecordResult(src.name, "failed", error=f"chunk {a}-{b}: {res.error}")
-        parts.append((lo, a, b, res))
+        parts.append((lo, a, b, _core(lo, a, b, res)))  # drop the overlap at once: bounded memory
     return merge_chunks(src, parts, n, fs, cfg)
+
+
+def _core(lo: int, a: int, b: int, res: RecordResult) -> RecordResult:
+    """The part of a chunk's result inside its own stretch [a, b), in record sample numbers."""
+    if res.windows is not None:
+        w = res.windows.copy()
+        w["start"] += lo
+        w["end"] += lo
+        res.windows = w[(w.start >= a) & (w.start < b)].reset_index(drop=True)
+    if res.beats is not None and not res.beats.empty:
+        bt = res.beats.copy()
+        bt["r_sample"] += lo
+        bt = bt[((bt.r_sample >= a) & (bt.r_sample < b)).to_numpy()].reset_index(drop=True)
+        take = bt.loc[bt.included, "tensor_index"].to_numpy()
+        res.tensor = np.ascontiguousarray(np.asarray(res.tensor)[take])
+        res.mask = np.asarray(res.mask)[take]
+        bt.loc[bt.included, "tensor_index"] = np.arange(take.size)
+        res.beats = bt
+    return res
 
 
 def _length(src: Source) -> tuple[int, float]:
@@ -68,23 +87,15 @@ def merge_chunks(src: Source, parts, n: int, fs: float, cfg: Config) -> RecordRe
     out = RecordResult(src.name, "ok", fs=fs, duration_s=n / fs, n_leads=first.n_leads,
                        inputs=first.inputs, comments=first.comments)
     beats, tensors, masks, wins = [], [], [], []
-    for lo, a, b, res in parts:
+    for lo, a, b, res in parts:  # each already cut to its core by _core
         out.warnings += [w for w in res.warnings if w not in out.warnings]
         if res.windows is not None:
-            w = res.windows.copy()
-            w["start"] += lo
-            w["end"] += lo
-            wins.append(w[(w.start >= a) & (w.start < b)])
+            wins.append(res.windows)
         if res.beats is None or res.beats.empty:
             continue
-        bt = res.beats.copy()
-        bt["r_sample"] += lo
-        core = ((bt.r_sample >= a) & (bt.r_sample < b)).to_numpy()
-        bt = bt[core]
-        take = bt.loc[bt.included, "tensor_index"].to_numpy()
-        tensors.append(np.asarray(res.tensor)[take])
-        masks.append(np.asarray(res.mask)[take])
-        beats.append(bt)
+        tensors.append(res.tensor)
+        masks.append(np.asarray(res.mask))
+        beats.append(res.beats)
     b = pd.concat(beats, ignore_index=True) if beats else _empty_beats()
     b["r_time_s"] = b["r_sample"] / fs
     b["beat_id"] = [f"{src.name}:{int(s)}" for s in b["r_sample"]]
@@ -96,10 +107,12 @@ def merge_chunks(src: Source, parts, n: int, fs: float, cfg: Config) -> RecordRe
     n_keep = sum(t.shape[0] for t in tensors)
     out.tensor = np.empty((n_keep, n_ax, cfg.resample.n_samples), np.float32)
     at = 0
-    for t in tensors:  # fill in place: no second full copy of the record's beats
+    for p in parts:  # the list below holds the only references now
+        p[3].tensor = None
+    for k, t in enumerate(tensors):  # fill in place, releasing each piece once copied
         out.tensor[at:at + t.shape[0]] = t
         at += t.shape[0]
-    del tensors
+        tensors[k] = None
     out.mask = np.concatenate(masks) if masks else np.zeros((0, n_ax), bool)
     out.windows = pd.concat(wins, ignore_index=True) if wins else None
     out.leads = _merge_leads([p[3].leads for p in parts], [p[2] - p[1] for p in parts],

@@ -21,8 +21,8 @@ from .export import (MANIFEST, TABLE_FILES, TENSOR_FILES, NpyWriter, environment
 from .leads import default_axis, resolve_axis
 from . import reasons as reasons_mod
 from .labels import AAMI_CLASSES, UNLABELED, load_mapping
-from .normalize import apply_stats, fit_per_lead, normalize
-from .pipeline import BEAT_COLUMNS, RecordResult, _empty_beats, safe_process
+from .normalize import apply_stats, normalize
+from .pipeline import BEAT_COLUMNS, RecordResult, _empty_beats
 from .split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
 from .read import Source, find_sources, read_source, source_inputs
 from .shards import read_shard, write_shard
@@ -518,24 +518,33 @@ def _gather_normalized(results: list[RecordResult], kept: pd.DataFrame, cfg: Con
         note = ("the training split, per lead" if any(splits[a] == "train" for a, _ in runs)
                 else "all kept beats, per lead (the training split is empty)")
         for a, b in train_runs:
-            acc.add(*part(a, b))
+            for i in range(a, b, _BATCH):
+                acc.add(*part(i, min(b, i + _BATCH)))
         stats = acc.result()
-    for a, b in runs:  # one step per record
+    for a, b in runs:  # one step per record, in batches so a long record stays bounded
         if b <= a:
             continue
-        raw, mk = part(a, b)
-        if scope == "beat":
-            y, c, sc = normalize(raw, mk, m, "beat")
-        elif scope == "record":
-            c0, s0 = fit_per_lead(raw, mk, m)
-            y, c, sc = apply_stats(raw, mk, c0[None, :], s0[None, :])
-        else:
-            y, c, sc = apply_stats(raw, mk, stats[0][None, :], stats[1][None, :])
-        tensor[a:b] = y
-        mask[a:b] = mk
-        center[a:b] = c
-        scale[a:b] = sc
+        batches = [(i, min(b, i + _BATCH)) for i in range(a, b, _BATCH)]
+        if scope == "record":
+            acc = LeadStats(m, n_ax)
+            for i, j in batches:
+                acc.add(*part(i, j))
+            rec_stats = acc.result()
+        for i, j in batches:
+            raw, mk = part(i, j)
+            if scope == "beat":
+                y, c, sc = normalize(raw, mk, m, "beat")
+            else:
+                st = rec_stats if scope == "record" else stats
+                y, c, sc = apply_stats(raw, mk, st[0][None, :], st[1][None, :])
+            tensor[i:j] = y
+            mask[i:j] = mk
+            center[i:j] = c
+            scale[i:j] = sc
     return tensor, mask, center, scale, note
+
+
+_BATCH = 4096  # beats normalized at once: ~16 MB of float64 per lead at 256 samples
 
 
 class LeadStats:
