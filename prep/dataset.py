@@ -504,11 +504,20 @@ def _gather_normalized(results: list[RecordResult], kept: pd.DataFrame, cfg: Con
     cuts = np.flatnonzero(np.r_[True, recs[1:] != recs[:-1], True]) if n else np.array([0])
     runs = list(zip(cuts[:-1], cuts[1:]))
 
+    def rows(arr, li, dtype):
+        # a memory-mapped shard is mapped afresh and unmapped after the read: pages touched
+        # through a long-lived map would stay resident and peak memory would grow with records
+        if isinstance(arr, np.memmap):
+            fresh = np.load(arr.filename, mmap_mode="r")
+            out = np.asarray(fresh[li], dtype=dtype)
+            del fresh
+            return out
+        return np.asarray(arr[li], dtype=dtype)
+
     def part(a, b):
         k = recs[a]
         li = local[a:b]
-        return (np.asarray(results[k].tensor[li], dtype=np.float64),
-                np.asarray(results[k].mask[li], dtype=bool))
+        return rows(results[k].tensor, li, np.float64), rows(results[k].mask, li, bool)
 
     note = {"beat": "each beat and lead", "record": "each record and lead"}.get(scope, "")
     stats = None
