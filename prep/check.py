@@ -6,7 +6,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .export import MANIFEST, TABLE_FILES, TENSOR_FILES, sha256_path
+from .export import MANIFEST, TABLE_FILES, TENSOR_FILES
+from .read import sha256_file
 from .pipeline import BEAT_COLUMNS
 
 
@@ -30,7 +31,7 @@ def check_dataset(run_dir: str | Path) -> list[str]:
             problems.append(f"{p}: missing")
         elif f not in files:
             problems.append(f"{p}: not listed in the manifest")
-        elif sha256_path(p) != files[f]:
+        elif sha256_file(p) != files[f]:
             problems.append(f"{p}: SHA-256 differs from the manifest (file changed or corrupted)")
     if problems:
         return problems

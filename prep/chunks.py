@@ -31,14 +31,17 @@ def chunk_plan(n: int, fs: float, cfg: Config) -> list[tuple[int, int, int, int]
             for a in range(0, n, chunk)]
 
 
-def process_source(src: Source, cfg: Config, axis: list[str], mapping=None) -> RecordResult:
-    """Read and process one source, in chunks when it is a long WFDB record."""
+def process_source(src: Source, cfg: Config, axis: list[str], mapping=None,
+                   inputs=None) -> RecordResult:
+    """Read and process one source, in chunks when it is a long WFDB record. ``inputs``: the
+    source's file checksums when the caller has them (files are then not hashed again)."""
     n, fs = _length(src)
     plan = chunk_plan(n, fs, cfg) if n and fs > 0 else [(0, 0, 0, 0)]
     if len(plan) == 1:
-        return safe_process(lambda: read_source(src, cfg.read), src.name, cfg, axis, mapping)
+        return safe_process(lambda: read_source(src, cfg.read, inputs), src.name, cfg, axis,
+                            mapping)
     parts = []
-    inputs = source_inputs(src, cfg.read)  # hashed once, not once per chunk
+    inputs = inputs or source_inputs(src, cfg.read)  # hashed once, not once per chunk
     for lo, a, b, hi in plan:  # one step per chunk
         res = safe_process(lambda: read_wfdb(src.path, cfg.read, name=src.name, sampfrom=lo,
                                              sampto=hi, inputs=inputs), src.name, cfg, axis,

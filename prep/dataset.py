@@ -16,7 +16,7 @@ import pandas as pd
 from . import __version__
 from .config import Config
 from .errors import ConfigError
-from .export import (MANIFEST, TABLE_FILES, TENSOR_FILES, NpyWriter, environment, sha256_path,
+from .export import (MANIFEST, TABLE_FILES, TENSOR_FILES, NpyWriter, environment,
                      write_manifest, write_npy, write_parquet)
 from .leads import default_axis, resolve_axis
 from . import reasons as reasons_mod
@@ -24,7 +24,7 @@ from .labels import AAMI_CLASSES, UNLABELED, load_mapping
 from .normalize import apply_stats, normalize
 from .pipeline import BEAT_COLUMNS, RecordResult, _empty_beats
 from .split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
-from .read import Source, find_sources, read_source, source_inputs
+from .read import Source, find_sources, read_source, sha256_file, source_inputs
 from .shards import read_shard, write_shard
 
 log = logging.getLogger("prep")
@@ -102,7 +102,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         log.warning("%s", p)
     chash = cfg.sha256(extra)
     root = str(shards) if shards else str(out / ".shards")
-    _prepare_out(out, overwrite, chash, root)
+    _prepare_out(out, overwrite, chash)
 
     if cfg.leads.select:
         axis = resolve_axis(cfg.leads.select)
@@ -175,8 +175,8 @@ def _shard_task(args) -> str:
     """Process one record and write its shard (in a worker process or on a Dask worker)."""
     from .chunks import process_source
     src, cfg, axis, mapping, root, key, inputs = args
-    res = process_source(src, cfg, axis, mapping)
-    if inputs:
+    res = process_source(src, cfg, axis, mapping, [tuple(x) for x in inputs] or None)
+    if inputs and not res.inputs:  # a record that failed still names the files it came from
         res.inputs = [tuple(x) for x in inputs]
     write_shard(root, res, key, inputs)
     return res.error
@@ -247,7 +247,7 @@ def _swap_in(staging: Path, out: Path) -> None:
         os.replace(staging / name, out / name)
 
 
-def _prepare_out(out: Path, overwrite: bool, config_hash: str, shard_root: str) -> None:
+def _prepare_out(out: Path, overwrite: bool, config_hash: str) -> None:
     """Refuse, before any work, an output that is in the way; nothing is deleted here.
 
     A dataset folder written with the same configuration hash is processed again in place (the
@@ -477,7 +477,7 @@ def write_assembled(out: Path, a: Assembled) -> None:
     write_parquet(out / "records.parquet", a.records)
     write_parquet(out / "windows.parquet", a.windows)
     manifest = {**a.manifest,
-                "files": {f: sha256_path(out / f) for f in TENSOR_FILES + TABLE_FILES}}
+                "files": {f: sha256_file(out / f) for f in TENSOR_FILES + TABLE_FILES}}
     write_manifest(out / MANIFEST, manifest)
 
 

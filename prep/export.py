@@ -16,7 +16,6 @@ TABLE_FILES = ("beats.parquet", "leads.parquet", "records.parquet", "windows.par
 MANIFEST = "manifest.json"
 
 
-from .read import sha256_file as sha256_path  # noqa: E402  (one implementation of file hashing)
 
 
 def _atomic(path: Path, write) -> None:

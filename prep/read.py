@@ -136,14 +136,16 @@ def source_inputs(src: Source, cfg: ReadConfig) -> list[tuple[str, str]]:
     return [(f.name, sha256_file(f)) for f in sorted(files) if f.is_file()]
 
 
-def read_source(src: Source, cfg: ReadConfig) -> Record:
+def read_source(src: Source, cfg: ReadConfig, inputs=None) -> Record:
+    """Read any source; ``inputs`` (its files' checksums, when the caller has them) are not
+    hashed again."""
     if src.kind == "wfdb":
-        rec = read_wfdb(src.path, cfg, name=src.name)
+        rec = read_wfdb(src.path, cfg, name=src.name, inputs=inputs)
     elif src.kind == "edf":
         from .edf import read_edf
-        rec = read_edf(src.path, name=src.name, inputs=source_inputs(src, cfg))
+        rec = read_edf(src.path, name=src.name, inputs=inputs or source_inputs(src, cfg))
     else:
-        rec = read_csv(src.path, cfg, name=src.name)
+        rec = read_csv(src.path, cfg, name=src.name, inputs=inputs)
     if rec.annotations is None:
         rec.annotations = read_annotation_csv(_annotation_csv(src), rec.fs, rec.n_samples)
     return rec
@@ -196,7 +198,10 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     hea = Path(str(base) + ".hea")
     shown = str(hea)
     warnings: list[str] = []
-    safe = _check_header(base, shown, warnings)
+    spf: list[int] = []
+    safe = _check_header(base, shown, warnings, spf)
+    if any(x != 1 for x in spf):  # several rates: read every sample of the ECG leads instead
+        return _read_multirate(base, spf, cfg, name, shown, warnings, inputs)
     end = min(x for x in (safe, sampto) if x) if (safe or sampto) else None
     try:
         rec = wfdb.rdrecord(str(base), physical=True, return_res=64, sampfrom=int(sampfrom),
@@ -209,9 +214,6 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
                           "header and signal files", path=shown, stage="read") from None
     fs = float(rec.fs or 0)
     _check_rate(fs, shown)
-    spf = [int(x or 1) for x in (rec.samps_per_frame or [1])]
-    if any(x != 1 for x in spf):
-        return _read_multirate(base, rec, spf, cfg, name, shown, warnings)
     sig = rec.p_signal
     if sig is None or sig.size == 0:
         raise RecordError("the record holds no samples", path=shown, stage="read")
@@ -241,7 +243,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
                   comments=list(rec.comments or []), path=shown, channels=keep)
 
 
-def _read_multirate(base: Path, rec0, spf: list[int], cfg: ReadConfig, name, shown, warnings):
+def _read_multirate(base: Path, spf: list[int], cfg: ReadConfig, name, shown, warnings, inputs):
     """A record whose signals have different rates: the ECG leads at the highest ECG rate are
     read at that rate (every sample), the other channels are skipped with the reason."""
     import wfdb
@@ -266,7 +268,8 @@ def _read_multirate(base: Path, rec0, spf: list[int], cfg: ReadConfig, name, sho
         ann.sample = ann.sample * top
     return Record(name=name or base.name, fs=fs0 * top, signals=data, warnings=warnings,
                   lead_names=[names[i] for i in keep], leads=[canonical_lead(names[i]) for i in keep],
-                  units=["mV"] * len(keep), inputs=source_inputs(Source("wfdb", base, base.name), cfg),
+                  units=["mV"] * len(keep),
+                  inputs=inputs or source_inputs(Source("wfdb", base, base.name), cfg),
                   skipped=skipped, annotations=ann, comments=list(rec.comments or []), path=shown,
                   channels=keep)
 
@@ -277,7 +280,8 @@ _FMT_BYTES = {"8": 1, "16": 2, "24": 3, "32": 4, "61": 2, "80": 1, "160": 2, "21
 _MAX_SAMPLES = 2_000_000_000  # per signal; beyond this a header is not believable
 
 
-def _check_header(base: Path, shown: str, warnings: list[str]) -> int | None:
+def _check_header(base: Path, shown: str, warnings: list[str],
+                  spf_out: list[int] | None = None) -> int | None:
     """Check a header against its signal files before reading; returns a safe ``sampto``.
 
     Catches what would otherwise crash or exhaust memory: text that is not a header, a missing or
@@ -309,6 +313,8 @@ def _check_header(base: Path, shown: str, warnings: list[str]) -> int | None:
     except Exception as exc:
         raise RecordError(f"the header cannot be parsed ({type(exc).__name__}: {exc}); compare it "
                           "with the WFDB header format", path=shown, stage="read") from None
+    if spf_out is not None:  # samples per frame, read from the header once for the caller
+        spf_out[:] = [int(x or 1) for x in (getattr(h, "samps_per_frame", None) or [1])]
     fs = float(h.fs or 0)
     if len(tokens) >= 3:
         field = tokens[2].split("/")[0].split("(")[0]
@@ -378,6 +384,7 @@ def _read_wfdb_annotations(base: Path, ext: str, n_samples: int,
 
 
 def read_csv(path: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | None = None,
+             inputs=None,
              fs: float | None = None) -> Record:
     """Read a CSV record: a header row of lead names, one column per lead, values in mV.
 
@@ -429,6 +436,6 @@ def read_csv(path: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | No
     data = df[keep].to_numpy(dtype=np.float64).T * scale_to_mv(units)
     return Record(name=name or path.stem, fs=rate, signals=np.ascontiguousarray(data),
                   lead_names=[str(c) for c in keep], leads=[canonical_lead(str(c)) for c in keep],
-                  units=["mV"] * len(keep), inputs=source_inputs(Source("csv", path, path.stem), cfg),
+                  units=["mV"] * len(keep), inputs=inputs or source_inputs(Source("csv", path, path.stem), cfg),
                   skipped=skipped, path=shown,
                   channels=[list(df.columns).index(c) for c in keep])

@@ -140,7 +140,8 @@ def test_same_seed_same_split_and_check_catches_leakage(demo_run, tmp_path):
     assert a.equals(b)
     # forge a leak: give two records of different splits the same patient, re-hash, check
     import shutil
-    from prep.export import sha256_path, write_parquet
+    from prep.export import write_parquet
+    from prep.read import sha256_file as sha256_path
     bad = tmp_path / "leak"
     shutil.copytree(out, bad)
     t = pd.read_parquet(bad / "beats.parquet")
