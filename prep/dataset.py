@@ -22,7 +22,7 @@ from .leads import default_axis, resolve_axis
 from . import reasons as reasons_mod
 from .labels import AAMI_CLASSES, UNLABELED, load_mapping
 from .normalize import apply_stats, normalize
-from .pipeline import BEAT_COLUMNS, RecordResult, _empty_beats
+from .pipeline import BEAT_COLUMNS, BEAT_TYPES, RecordResult, _empty_beats
 from .split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
 from .read import Source, find_sources, read_source, sha256_file, source_inputs
 from .shards import read_shard, write_shard
@@ -119,7 +119,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
     todo = []
     done = 0
     for i, src in enumerate(found):
-        cached = read_shard(root, src.name, key, inputs[i])
+        cached = read_shard(root, src.name, key, inputs[i], tables=False)
         if cached is None:
             todo.append(i)
         else:
@@ -132,7 +132,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
     tasks = [(found[i], cfg, axis, mapping, root, key, inputs[i]) for i in todo]
     for i, error in zip(todo, _execute(tasks, workers, dask)):
         done += 1
-        res = read_shard(root, found[i].name, key, inputs[i])
+        res = read_shard(root, found[i].name, key, inputs[i], tables=False)
         if res is None:  # the worker died before committing: report, never trust half a shard
             res = RecordResult(found[i].name, "failed", error=error or "the worker processing "
                                "this record stopped before writing its results")
@@ -152,7 +152,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
             return NpyWriter(staging / name, shape, dtype)
 
         a = assemble(results, cfg, axis, [str(s) for s in sources], [str(s.path) for s in found],
-                     mapping, pmap, extra, alloc=alloc)
+                     mapping, pmap, extra, alloc=alloc, tables_to=staging)
         write_assembled(staging, a)
         _swap_in(staging, out)
     finally:
@@ -308,28 +308,138 @@ def _resolve_extras(cfg: Config) -> tuple[dict, dict, dict]:
 
 @dataclass
 class Assembled:
-    """A whole dataset in memory: what a run folder holds, before it is written."""
+    """A whole dataset: what a run folder holds, before it is written."""
 
     beats: np.ndarray          # (n_kept, n_leads, n_samples) float32, normalized
     lead_mask: np.ndarray      # (n_kept, n_leads) bool
     norm_center: np.ndarray    # (n_kept, n_leads) float32
     norm_scale: np.ndarray     # (n_kept, n_leads) float32
-    table: pd.DataFrame        # beats.parquet
+    table: pd.DataFrame | None     # beats.parquet (None: already streamed into the file)
     leads: pd.DataFrame        # leads.parquet
     records: pd.DataFrame      # records.parquet
-    windows: pd.DataFrame      # windows.parquet
+    windows: pd.DataFrame | None   # windows.parquet (None: already streamed into the file)
     manifest: dict             # manifest.json without the file checksums
     exit_code: int
 
 
+class _Rows:
+    """Where consolidation puts table rows, a record at a time: kept in memory by default;
+    :class:`_ParquetRows` streams them into a file instead."""
+
+    def __init__(self):
+        self.parts: list[pd.DataFrame] = []
+
+    def add(self, df: pd.DataFrame) -> None:
+        self.parts.append(df)
+
+    def finish(self, empty: pd.DataFrame) -> pd.DataFrame | None:
+        return pd.concat(self.parts, ignore_index=True) if self.parts else empty
+
+
+class _ParquetRows(_Rows):
+    """Rows written to a Parquet file in row groups of about ``group`` rows; memory holds one
+    group at most. The schema is fixed by ``schema`` or by the first rows written."""
+
+    def __init__(self, path: Path, schema=None, group: int = 65536):
+        super().__init__()
+        self.path, self.schema, self.group = path, schema, group
+        self.writer = None
+        self.n = 0
+
+    def add(self, df: pd.DataFrame) -> None:
+        if len(df):
+            self.parts.append(df)
+            self.n += len(df)
+        if self.n >= self.group:
+            self._flush()
+
+    def _flush(self) -> None:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+        if not self.parts:
+            return
+        df = pd.concat(self.parts, ignore_index=True)
+        self.parts, self.n = [], 0
+        if self.schema is None:  # an all-empty column would be typed null: make it text
+            sch = pa.Schema.from_pandas(df, preserve_index=False)
+            self.schema = pa.schema([f.with_type(pa.string()) if pa.types.is_null(f.type) else f
+                                     for f in sch]).remove_metadata()
+        table = pa.Table.from_pandas(df, schema=self.schema, preserve_index=False)
+        if self.writer is None:
+            self.writer = pq.ParquetWriter(self.path, self.schema, compression="zstd")
+        self.writer.write_table(table)
+
+    def finish(self, empty: pd.DataFrame) -> None:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+        self._flush()
+        if self.writer is None:  # no rows at all: an empty file with the columns
+            pq.write_table(pa.Table.from_pandas(empty, schema=self.schema, preserve_index=False)
+                           if self.schema is not None else
+                           pa.Table.from_pandas(empty, preserve_index=False), self.path,
+                           compression="zstd")
+        else:
+            self.writer.close()
+        return None
+
+
+def _beats_schema():
+    """The fixed Arrow schema of beats.parquet (row groups from different records must agree)."""
+    import pyarrow as pa
+    arrow = {"str": pa.string(), "int64": pa.int64(), "float64": pa.float64(), "bool": pa.bool_()}
+    return pa.schema([(c, arrow[t]) for c, t in zip(BEAT_COLUMNS, BEAT_TYPES)] +
+                     [("patient", pa.string()), ("split", pa.string())])
+
+
+@dataclass
+class _Part:
+    """What consolidation keeps of one record between its passes: a few numbers, no table."""
+
+    patient: str
+    split: str
+    n_beats: int
+    kept: dict          # kept beats per class (NaN class under key None), before split rules
+    n_final: int = 0    # kept beats after the split rules
+    offset: int = 0     # first tensor row of the record
+
+
+def _beats_of(r: RecordResult, columns: list[str] | None = None) -> pd.DataFrame:
+    b = r.table("beats", columns)
+    if b is None or not len(b.columns):
+        b = _empty_beats()
+        if columns is not None:
+            b = b[columns]
+    return b
+
+
+def _rule_reasons(b: pd.DataFrame, split: str, fixed: bool, train_classes: set) -> np.ndarray:
+    """Exclusions the split settings add to a record's kept beats ('' = none)."""
+    extra = np.full(len(b), "", dtype=object)
+    if fixed and not split:
+        extra[b["included"].to_numpy()] = "not_in_split_lists"
+    elif split == "train" and train_classes:
+        off = b["included"].to_numpy() & ~b["class"].isin(train_classes).to_numpy()
+        extra[off] = "not_train_class"
+    return extra
+
+
+def _final_rows(b: pd.DataFrame, extra: np.ndarray) -> np.ndarray:
+    """Positions in ``b`` of the beats that reach the tensor, in tensor order (time)."""
+    idx = np.flatnonzero(b["included"].to_numpy() & (extra == ""))
+    return idx[np.argsort(b["r_sample"].to_numpy()[idx], kind="stable")]
+
+
 def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: list[str],
              record_paths: list[str], mapping: dict, pmap: dict, extra: dict,
-             alloc=None) -> Assembled:
+             alloc=None, tables_to: Path | None = None) -> Assembled:
     """Split, order, normalize and tabulate processed records into one dataset.
 
     ``alloc(name, shape, dtype)`` provides the output arrays (default: in memory); the writer
-    passes memory-mapped files, so the tensor streams record by record and peak memory does not
-    grow with the number of records. Record tensors may be memory-mapped shards.
+    passes memory-mapped files. With ``tables_to`` (a folder), beats.parquet and
+    windows.parquet are streamed there. Records are visited one at a time in a few passes
+    (class counts, normalization statistics, tensor, tables), and tables left in shards
+    (``RecordResult.store``) are read only while their record is visited, so peak memory does
+    not grow with the number of records.
     """
     alloc = alloc or (lambda name, shape, dtype: np.zeros(shape, dtype))
     n_ax, n_s = len(axis), cfg.resample.n_samples
@@ -337,10 +447,15 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
         if r.tensor is None:
             r.tensor = np.zeros((0, n_ax, n_s))
             r.mask = np.zeros((0, n_ax), bool)
-            r.beats = _empty_beats()
 
-    # ---- patients and splits ------------------------------------------------------------
+    # ---- pass 1: kept beats per class, then patients and splits --------------------------
     patients = [patient_of(r.name, r.comments, pmap, cfg.split.patient_pattern) for r in results]
+    parts = []
+    for r, p in zip(results, patients):
+        b = _beats_of(r, ["included", "class"])
+        vc = b.loc[b["included"], "class"].value_counts(dropna=False)
+        parts.append(_Part(p, "", len(b), {(None if pd.isna(k) else str(k)): int(v)
+                                          for k, v in vc.items()}))
     sp = cfg.split
     fixed = bool(sp.train_patients or sp.val_patients or sp.test_patients)
     if fixed:
@@ -348,84 +463,110 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
                                     sp.test_patients)
     else:
         counts: dict[str, dict[str, int]] = {}
-        for r, p in zip(results, patients):
-            c = counts.setdefault(p, {})
-            kept = r.beats[r.beats["included"]]
-            for k, v in kept["class"].value_counts().items():
-                c[str(k)] = c.get(str(k), 0) + int(v)
+        for part in parts:
+            c = counts.setdefault(part.patient, {})
+            for k, v in part.kept.items():
+                if k is not None:
+                    c[k] = c.get(k, 0) + v
         split_of = assign_patients(counts, sp.ratios, sp.seed)
     train_classes = set(cfg.labels.train_classes)
-    frames = []
-    for k, (r, p) in enumerate(zip(results, patients)):
-        b = r.beats.copy(deep=False)  # copy-on-write: the record's own table is never changed
-        split = split_of.get(p, "")
-        b["patient"] = p
-        b["split"] = split
-        b["_rec"] = k
-        b["_local"] = b["tensor_index"]
-        extra_reason = np.full(len(b), "", dtype=object)
-        if fixed and not split:
-            extra_reason[b["included"].to_numpy()] = "not_in_split_lists"
-        elif split == "train" and train_classes:
-            off = b["included"].to_numpy() & ~b["class"].isin(train_classes).to_numpy()
-            extra_reason[off] = "not_train_class"
-        hit = extra_reason != ""
-        if hit.any():
-            b.loc[hit, "reasons"] = [reasons_mod.join([c]) for c in extra_reason[hit]]
-            b.loc[hit, "flags"] = ""
-            b.loc[hit, "included"] = False
-        frames.append(b)
-    beats = pd.concat(frames, ignore_index=True) if frames else _empty_beats()
-    del frames
-    if "patient" not in beats:
-        beats["patient"], beats["split"], beats["_rec"], beats["_local"] = "", "", 0, -1
+    for part in parts:
+        part.split = split_of.get(part.patient, "")
+        if fixed and not part.split:
+            part.n_final = 0
+        elif part.split == "train" and train_classes:
+            part.n_final = sum(v for k, v in part.kept.items() if k in train_classes)
+        else:
+            part.n_final = sum(part.kept.values())
 
     # ---- global order: split, then patient, then record and time -----------------------
     rank = {"train": 0, "val": 1, "test": 2}
-    kept = beats.loc[beats["included"], ["split", "patient", "record", "r_sample", "_rec",
-                                         "_local"]].copy()  # only what ordering needs
-    kept["_rank"] = kept["split"].map(rank).fillna(3)
-    kept = kept.sort_values(["_rank", "patient", "record", "r_sample"], kind="stable")
-    beats["tensor_index"] = -1
-    beats.loc[kept.index, "tensor_index"] = np.arange(len(kept))
-    tensor, mask, center, scale, norm_note = _gather_normalized(results, kept, cfg, n_ax, n_s,
-                                                                 alloc)
-    ranges = {}
-    kept_split = kept["split"].to_numpy()
-    for sname in SPLITS:
-        idx = np.flatnonzero(kept_split == sname)
-        ranges[sname] = [int(idx[0]), int(idx[-1]) + 1] if idx.size else [0, 0]
-    cols = [c for c in BEAT_COLUMNS if c in beats] + ["patient", "split"]
-    beats = beats[cols]
-    del kept
+    order = sorted((k for k, part in enumerate(parts) if part.n_final),
+                   key=lambda k: (rank.get(parts[k].split, 3), parts[k].patient,
+                                  results[k].name, k))
+    at = 0
+    ranges = {s: [0, 0] for s in SPLITS}
+    for k in order:
+        parts[k].offset = at
+        at += parts[k].n_final
+        rg = ranges.get(parts[k].split)
+        if rg is not None:
+            if rg == [0, 0]:
+                rg[0] = parts[k].offset
+            rg[1] = at
+    n_total = at
+
+    def local_rows(k: int) -> np.ndarray:
+        """Shard tensor rows of record k's final beats, in tensor order."""
+        b = _beats_of(results[k], ["included", "class", "r_sample", "tensor_index"])
+        rows = _final_rows(b, _rule_reasons(b, parts[k].split, fixed, train_classes))
+        return b["tensor_index"].to_numpy()[rows]
+
+    tensor, mask, center, scale, norm_note = _gather_normalized(
+        results, [(k, parts[k].split) for k in order], local_rows, n_total, cfg, n_ax, n_s, alloc)
+
+    # ---- pass 4: tables, record by record in input order -------------------------------
+    sink_b = _ParquetRows(tables_to / "beats.parquet", _beats_schema()) if tables_to else _Rows()
+    sink_w = _ParquetRows(tables_to / "windows.parquet") if tables_to else _Rows()
+    reason_counts: dict[str, int] = {}
+    split_classes = {s: {} for s in SPLITS}
+    n_beats_all = 0
+    for k, (r, part) in enumerate(zip(results, parts)):
+        b = _beats_of(r).copy(deep=False)  # copy-on-write: the record's own table is not changed
+        b["patient"] = part.patient
+        b["split"] = part.split
+        more = _rule_reasons(b, part.split, fixed, train_classes)
+        hit = more != ""
+        if hit.any():
+            b.loc[hit, "reasons"] = [reasons_mod.join([c]) for c in more[hit]]
+            b.loc[hit, "flags"] = ""
+            b.loc[hit, "included"] = False
+        rows = _final_rows(b, more)
+        ti = np.full(len(b), -1, np.int64)
+        ti[rows] = part.offset + np.arange(rows.size)
+        b["tensor_index"] = ti
+        for cell in b["reasons"]:
+            for c in filter(None, str(cell).split(";")):
+                reason_counts[c] = reason_counts.get(c, 0) + 1
+        if part.split in split_classes and rows.size:
+            sc = split_classes[part.split]
+            for cls, v in b["class"].iloc[rows].value_counts().items():
+                sc[str(cls)] = sc.get(str(cls), 0) + int(v)
+        n_beats_all += len(b)
+        sink_b.add(b[[c for c in BEAT_COLUMNS if c in b] + ["patient", "split"]])
+        w = r.table("windows")
+        if w is not None:
+            sink_w.add(w)
+        del b, w
+    empty_b = _empty_beats()
+    empty_b["patient"], empty_b["split"] = pd.Series(dtype="str"), pd.Series(dtype="str")
+    beats = sink_b.finish(empty_b)
+    windows = sink_w.finish(pd.DataFrame({c: pd.Series(dtype="float64") for c in
+                                          ["record", "lead", "start", "end", "grade",
+                                           "decided_by"]}))
+
     lead_rows = [row for r in results for row in r.leads]
     leads = pd.DataFrame(lead_rows) if lead_rows else pd.DataFrame(
         {c: [] for c in ("record", "lead", "source_name", "used", "reason", "in_axis")})
-    n_kept_rec = beats[beats["included"]].groupby("record").size()
     records = pd.DataFrame({
         "record": [r.name for r in results], "status": [r.status for r in results],
         "error": [r.error for r in results], "fs": [float(r.fs) for r in results],
         "duration_s": [float(r.duration_s) for r in results],
-        "n_leads": [int(r.n_leads) for r in results], "n_beats": [r.n_beats for r in results],
-        "n_kept": [int(n_kept_rec.get(r.name, 0)) for r in results],
-        "patient": patients, "split": [split_of.get(p, "") for p in patients],
+        "n_leads": [int(r.n_leads) for r in results],
+        "n_beats": [part.n_beats for part in parts],
+        "n_kept": [part.n_final for part in parts],
+        "patient": patients, "split": [part.split for part in parts],
         "warnings": ["; ".join(r.warnings) for r in results],
         "inputs": [[{"file": f, "sha256": h} for f, h in r.inputs] for r in results]})
 
     n_failed = sum(r.status == "failed" for r in results)
     n_nolead = sum(r.status == "no_usable_lead" for r in results)
-    reason_counts: dict[str, int] = {}
-    for cell in beats["reasons"]:
-        for c in filter(None, str(cell).split(";")):
-            reason_counts[c] = reason_counts.get(c, 0) + 1
-    kept_final = beats[beats["included"]]
     split_info = {}
     for sname in SPLITS:
-        part = kept_final[kept_final["split"] == sname]
         split_info[sname] = {
-            "rows": ranges[sname], "beats": int(len(part)),
-            "patients": sorted(set(p for p, sv in zip(patients, records["split"]) if sv == sname)),
-            "classes": {str(k): int(v) for k, v in sorted(part["class"].value_counts().items())}}
+            "rows": ranges[sname], "beats": int(ranges[sname][1] - ranges[sname][0]),
+            "patients": sorted(set(p for p, part in zip(patients, parts) if part.split == sname)),
+            "classes": dict(sorted(split_classes[sname].items()))}
     manifest = {
         "tool": {"name": "beatmill", "version": __version__},
         "config_sha256": cfg.sha256(extra),
@@ -447,8 +588,8 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
         "inputs": {"given": given, "records": record_paths},
         "counts": {"records": len(results), "records_ok": len(results) - n_failed - n_nolead,
                    "records_failed": n_failed, "records_no_usable_lead": n_nolead,
-                   "beats": int(len(beats)), "beats_kept": int(tensor.shape[0]),
-                   "beats_excluded": int(len(beats) - tensor.shape[0]),
+                   "beats": int(n_beats_all), "beats_kept": int(tensor.shape[0]),
+                   "beats_excluded": int(n_beats_all - tensor.shape[0]),
                    "excluded_by_reason": dict(sorted(reason_counts.items()))},
         "records": {r.name: {"status": r.status, "error": r.error, "warnings": r.warnings,
                              "stages": [lg.to_dict() for lg in r.logs]} for r in results},
@@ -456,26 +597,25 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     usable = len(results) - n_failed - n_nolead
     code = (EXIT_NONE_USABLE if usable == 0 else EXIT_SOME_FAILED if usable < len(results)
             else EXIT_OK)
-    wins = [r.windows for r in results if r.windows is not None]
-    windows = (pd.concat(wins, ignore_index=True) if wins else
-               pd.DataFrame({c: pd.Series(dtype="float64") for c in
-                             ["record", "lead", "start", "end", "grade", "decided_by"]}))
     return Assembled(tensor, mask, center, scale, beats, leads, records, windows, manifest, code)
 
 
 def write_assembled(out: Path, a: Assembled) -> None:
     """Write an assembled dataset; the manifest, holding every file's SHA-256, comes last.
-    Tensors already streamed into ``out`` (see :func:`assemble`) are closed, not copied."""
+    Tensors and tables already streamed into ``out`` (see :func:`assemble`) are closed, not
+    copied."""
     for name, arr in (("beats.npy", a.beats), ("lead_mask.npy", a.lead_mask),
                       ("norm_center.npy", a.norm_center), ("norm_scale.npy", a.norm_scale)):
         if isinstance(arr, NpyWriter) and arr.path.resolve() == (out / name).resolve():
             arr.close()
         else:
             write_npy(out / name, arr)
-    write_parquet(out / "beats.parquet", a.table)
-    write_parquet(out / "leads.parquet", a.leads)
-    write_parquet(out / "records.parquet", a.records)
-    write_parquet(out / "windows.parquet", a.windows)
+    for name, df in (("beats.parquet", a.table), ("leads.parquet", a.leads),
+                     ("records.parquet", a.records), ("windows.parquet", a.windows)):
+        if df is not None:
+            write_parquet(out / name, df)
+        elif not (out / name).exists():
+            raise FileNotFoundError(f"{out / name}: the streamed table was not written")
     manifest = {**a.manifest,
                 "files": {f: sha256_file(out / f) for f in TENSOR_FILES + TABLE_FILES}}
     write_manifest(out / MANIFEST, manifest)
@@ -488,21 +628,16 @@ def _summary(out: Path, a: Assembled) -> RunSummary:
                       a.manifest["splits"])
 
 
-def _gather_normalized(results: list[RecordResult], kept: pd.DataFrame, cfg: Config, n_ax: int,
-                       n_s: int, alloc):
-    """Copy kept beats into the output arrays in their final order, normalized, one record's
-    contiguous run of rows at a time. Dataset statistics come from the training split."""
+def _gather_normalized(results: list[RecordResult], order: list[tuple[int, str]], local_rows,
+                       n: int, cfg: Config, n_ax: int, n_s: int, alloc):
+    """Copy kept beats into the output arrays in their final order, normalized, one record at a
+    time (``order``: record index and split, in tensor order; ``local_rows(k)``: record k's
+    shard rows in tensor order). Dataset statistics come from the training split."""
     m, scope = cfg.normalize.method, cfg.normalize.scope
-    n = len(kept)
     tensor = alloc("beats.npy", (n, n_ax, n_s), np.float32)
     mask = alloc("lead_mask.npy", (n, n_ax), np.bool_)
     center = alloc("norm_center.npy", (n, n_ax), np.float32)
     scale = alloc("norm_scale.npy", (n, n_ax), np.float32)
-    recs = kept["_rec"].to_numpy()
-    local = kept["_local"].to_numpy()
-    splits = kept["split"].to_numpy()
-    cuts = np.flatnonzero(np.r_[True, recs[1:] != recs[:-1], True]) if n else np.array([0])
-    runs = list(zip(cuts[:-1], cuts[1:]))
 
     def rows(arr, li, dtype):
         # a memory-mapped shard is mapped afresh and unmapped after the read: pages touched
@@ -514,88 +649,125 @@ def _gather_normalized(results: list[RecordResult], kept: pd.DataFrame, cfg: Con
             return out
         return np.asarray(arr[li], dtype=dtype)
 
-    def part(a, b):
-        k = recs[a]
-        li = local[a:b]
-        return rows(results[k].tensor, li, np.float64), rows(results[k].mask, li, bool)
+    def batches(k: int, li: np.ndarray):
+        for i in range(0, li.size, _BATCH):
+            part = li[i:i + _BATCH]
+            yield i, rows(results[k].tensor, part, np.float64), rows(results[k].mask, part, bool)
 
     note = {"beat": "each beat and lead", "record": "each record and lead"}.get(scope, "")
     stats = None
     if scope == "dataset" and n:
-        acc = LeadStats(m, n_ax)
-        train_runs = [(a, b) for a, b in runs if splits[a] == "train"] or runs
-        note = ("the training split, per lead" if any(splits[a] == "train" for a, _ in runs)
+        has_train = any(s == "train" for _, s in order)
+        train = [k for k, s in order if s == "train"] if has_train else [k for k, _ in order]
+        note = ("the training split, per lead" if has_train
                 else "all kept beats, per lead (the training split is empty)")
-        for a, b in train_runs:
-            for i in range(a, b, _BATCH):
-                acc.add(*part(i, min(b, i + _BATCH)))
-        stats = acc.result()
-    for a, b in runs:  # one step per record, in batches so a long record stays bounded
-        if b <= a:
-            continue
-        batches = [(i, min(b, i + _BATCH)) for i in range(a, b, _BATCH)]
+
+        def stream():  # every training beat batch; may be walked more than once
+            for k in train:
+                for _, raw, mk in batches(k, local_rows(k)):
+                    yield raw, mk
+        stats = lead_stats(m, n_ax, stream)
+    at = 0
+    for k, _ in order:  # one step per record, in batches so a long record stays bounded
+        li = local_rows(k)
         if scope == "record":
-            acc = LeadStats(m, n_ax)
-            for i, j in batches:
-                acc.add(*part(i, j))
-            rec_stats = acc.result()
-        for i, j in batches:
-            raw, mk = part(i, j)
+            rec_stats = lead_stats(m, n_ax, lambda: ((raw, mk) for _, raw, mk in batches(k, li)))
+        for i, raw, mk in batches(k, li):
             if scope == "beat":
                 y, c, sc = normalize(raw, mk, m, "beat")
             else:
                 st = rec_stats if scope == "record" else stats
                 y, c, sc = apply_stats(raw, mk, st[0][None, :], st[1][None, :])
-            tensor[i:j] = y
-            mask[i:j] = mk
-            center[i:j] = c
-            scale[i:j] = sc
+            j = at + i
+            tensor[j:j + len(raw)] = y
+            mask[j:j + len(raw)] = mk
+            center[j:j + len(raw)] = c
+            scale[j:j + len(raw)] = sc
+        at += li.size
     return tensor, mask, center, scale, note
 
 
 _BATCH = 4096  # beats normalized at once: ~16 MB of float64 per lead at 256 samples
 
 
-class LeadStats:
-    """Per-lead normalization statistics accumulated over batches of beats (unmasked leads)."""
-
-    def __init__(self, method: str, n_leads: int):
-        self.method, self.n = method, n_leads
-        self.sum = np.zeros(n_leads)
-        self.sq = np.zeros(n_leads)
-        self.cnt = np.zeros(n_leads)
-        self.lo = np.full(n_leads, np.inf)
-        self.hi = np.full(n_leads, -np.inf)
-        self.values: list[list[np.ndarray]] = [[] for _ in range(n_leads)]
-
-    def add(self, beats: np.ndarray, mask: np.ndarray) -> None:
-        for j in range(self.n):
-            v = beats[mask[:, j], j]
-            if v.size == 0:
-                continue
-            self.sum[j] += v.sum()
-            self.sq[j] += (v * v).sum()
-            self.cnt[j] += v.size
-            self.lo[j] = min(self.lo[j], v.min())
-            self.hi[j] = max(self.hi[j], v.max())
-            if self.method == "robust":  # exact quantiles need the values: one lead's train beats
-                self.values[j].append(v.ravel().astype(np.float32))
-
-    def result(self) -> tuple[np.ndarray, np.ndarray]:
-        c, s = np.zeros(self.n), np.ones(self.n)
-        for j in range(self.n):
-            if self.cnt[j] == 0 or self.method == "none":
-                continue
-            if self.method == "zscore":
-                c[j] = self.sum[j] / self.cnt[j]
-                s[j] = np.sqrt(max(self.sq[j] / self.cnt[j] - c[j] ** 2, 0.0))
-            elif self.method == "minmax":
-                c[j], s[j] = self.lo[j], self.hi[j] - self.lo[j]
-            else:
-                q1, q2, q3 = np.percentile(np.concatenate(self.values[j]), [25, 50, 75])
-                c[j], s[j] = q2, q3 - q1
-        s = np.where(s > 1e-6, s, 1.0)
+def lead_stats(method: str, n_leads: int, stream) -> tuple[np.ndarray, np.ndarray]:
+    """Per-lead (centre, scale) over the unmasked leads of the beat batches ``stream()``
+    yields as (beats, mask). ``stream`` is called once per pass: one pass for zscore and minmax;
+    robust (median and IQR, exact, as ``numpy.percentile``) narrows a value interval per
+    quantile with histograms over a few passes, so memory stays bounded by one batch plus at
+    most ``_EXACT`` values per quantile instead of holding every value."""
+    c, s = np.zeros(n_leads), np.ones(n_leads)
+    if method == "none":
         return c, s
+    sm, sq, cnt = np.zeros(n_leads), np.zeros(n_leads), np.zeros(n_leads, np.int64)
+    lo, hi = np.full(n_leads, np.inf), np.full(n_leads, -np.inf)
+    for beats, mk in stream():
+        for j in range(n_leads):
+            v = beats[mk[:, j], j]
+            if v.size:
+                sm[j] += v.sum()
+                sq[j] += (v * v).sum()
+                cnt[j] += v.size
+                lo[j] = min(lo[j], v.min())
+                hi[j] = max(hi[j], v.max())
+    for j in range(n_leads):
+        if cnt[j] == 0:
+            continue
+        if method == "zscore":
+            c[j] = sm[j] / cnt[j]
+            s[j] = np.sqrt(max(sq[j] / cnt[j] - c[j] ** 2, 0.0))
+        elif method == "minmax":
+            c[j], s[j] = lo[j], hi[j] - lo[j]
+        else:
+            q1, q2, q3 = _exact_percentiles(stream, j, int(cnt[j]), lo[j], hi[j], (25, 50, 75))
+            c[j], s[j] = q2, q3 - q1
+    s = np.where(s > 1e-6, s, 1.0)
+    return c, s
+
+
+_EXACT = 1 << 20  # values gathered for an exact quantile once its interval holds this few
+
+
+def _exact_percentiles(stream, lead: int, n: int, lo: float, hi: float, qs) -> list[float]:
+    """Exact ``numpy.percentile`` (linear interpolation) of one lead's values, found without
+    holding them all: each needed order statistic is located by histogram passes that narrow
+    its value interval, then read exactly from the few values left in it."""
+    def values(a, b, closed):
+        for beats, mk in stream():
+            v = beats[mk[:, lead], lead].ravel()
+            yield v[(v >= a) & ((v <= b) if closed else (v < b))]
+
+    def order_stat(rank: int) -> float:
+        a, b, closed, below = lo, hi, True, 0  # `below` values lie under the interval
+        while a < b:
+            edges = np.linspace(a, b, 1025)
+            if not (edges[0] < edges[1] and edges[-2] < edges[-1]):
+                break  # as narrow as floating point allows
+            hist = np.zeros(1024, np.int64)
+            for v in values(a, b, closed):
+                hist += np.histogram(v, edges)[0]  # last bin closed; half-open input skips b
+            cum = below + np.cumsum(hist)
+            i = min(int(np.searchsorted(cum, rank, side="right")), 1023)
+            a, b, closed = edges[i], edges[i + 1], closed and i == 1023
+            below = int(cum[i] - hist[i])
+            if hist[i] <= _EXACT:
+                break
+        if a >= b:
+            return float(a)
+        got = np.sort(np.concatenate(list(values(a, b, closed))))
+        return float(got[rank - below]) if got.size > rank - below else float(a)
+
+    found: dict[int, float] = {}
+    out = []
+    for q in qs:
+        h = (n - 1) * q / 100.0
+        k = int(np.floor(h))
+        k1 = min(n - 1, k + 1)
+        for r in (k, k1):
+            if r not in found:
+                found[r] = order_stat(r)
+        out.append(found[k] + (h - k) * (found[k1] - found[k]))
+    return out
 
 
 def split_summary(info: dict) -> str:

@@ -36,6 +36,9 @@ BEAT_COLUMNS = ["beat_id", "record", "r_sample", "r_time_s", "rr_prev_s", "rr_ne
                 "reasons", "tensor_index", "flags", "label", "class", "rhythm", "detect_conf", "n_leads_seen",
                 "template_corr", "hf_ratio", "bad_fraction", "amplitude_z", "window_grade",
                 "second_detector"]
+BEAT_TYPES = ["str", "str", "int64", "float64", "float64", "float64", "bool", "str", "int64",
+              "str", "str", "str", "str", "float64", "int64", "float64", "float64", "float64", "float64",
+              "str", "bool"]  # one per column of BEAT_COLUMNS
 
 
 @dataclass
@@ -57,10 +60,22 @@ class RecordResult:
     comments: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
     windows: pd.DataFrame | None = None        # one row per lead and quality window
+    store: object | None = None                # shards.ShardTables: tables left on storage
 
     @property
     def n_beats(self) -> int:
+        if self.beats is None and self.store is not None:
+            return int(self.store.n_rows.get("beats") or 0)
         return 0 if self.beats is None else len(self.beats)
+
+    def table(self, name: str, columns: list[str] | None = None) -> pd.DataFrame | None:
+        """The 'beats' or 'windows' table, from memory or read from the record's shard."""
+        df = getattr(self, name)
+        if df is None and self.store is not None:
+            df = self.store.load(name, columns)
+        if df is not None and columns is not None:
+            df = df[columns]
+        return df
 
     @property
     def n_kept(self) -> int:
@@ -81,10 +96,7 @@ def fill_gaps(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _empty_beats() -> pd.DataFrame:
-    return pd.DataFrame({c: pd.Series(dtype=t) for c, t in zip(
-        BEAT_COLUMNS, ["str", "str", "int64", "float64", "float64", "float64", "bool", "str",
-                       "int64", "str", "str", "str", "str", "float64", "int64", "float64",
-                       "float64", "float64", "float64", "str", "bool"])})
+    return pd.DataFrame({c: pd.Series(dtype=t) for c, t in zip(BEAT_COLUMNS, BEAT_TYPES)})
 
 
 def process_record(rec: Record, cfg: Config, axis: list[str],

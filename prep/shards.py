@@ -113,11 +113,37 @@ def _plain(o):
     raise TypeError(type(o).__name__)
 
 
+class ShardTables:
+    """A committed shard's beat and window tables, read only when asked for.
+
+    Consolidation reads each table a few times, a record at a time, instead of holding every
+    record's tables at once: memory then does not grow with the number of records. Each read is
+    checked against the commit marker again.
+    """
+
+    def __init__(self, fs, folder: str, hashes: dict, n_rows: dict):
+        self.fs, self.folder, self.hashes, self.n_rows = fs, folder, hashes, n_rows
+
+    def load(self, table: str, columns: list[str] | None = None) -> pd.DataFrame | None:
+        """``table`` is 'beats' or 'windows'; None when the record wrote no such table."""
+        name = f"{table}.parquet"
+        with self.fs.open(f"{self.folder}/{name}", "rb") as fh:
+            data = fh.read()
+        if hashlib.sha256(data).hexdigest() != self.hashes.get(name):
+            raise OSError(f"shard {self.folder}: {name} changed after it was committed; run the "
+                          "same command again to redo this record")
+        if self.n_rows.get(table) is None:
+            return None
+        return pd.read_parquet(io.BytesIO(data), columns=columns)
+
+
 def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
-               verify: bool = True) -> RecordResult | None:
+               verify: bool = True, tables: bool = True) -> RecordResult | None:
     """The record's committed shard, or None when absent, uncommitted, stale or corrupt.
 
     ``inputs`` (file, SHA-256) pairs must match the commit (None skips that check).
+    ``tables=False`` leaves the beat and window tables on storage: ``res.beats`` and
+    ``res.windows`` are None and ``res.store`` (a :class:`ShardTables`) reads them on demand.
     """
     fs, base = _fs(root)
     d = f"{base.rstrip('/')}/{shard_name(record)}"
@@ -158,12 +184,22 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
     else:
         res.tensor = np.load(io.BytesIO(blobs["tensor.npy"]))
         res.mask = np.load(io.BytesIO(blobs["mask.npy"]))
-    b = pd.read_parquet(io.BytesIO(blobs["beats.parquet"]))
-    res.beats = b if len(b.columns) else None
-    w = pd.read_parquet(io.BytesIO(blobs["windows.parquet"]))
-    res.windows = w if len(w.columns) else None
+    if tables:
+        b = pd.read_parquet(io.BytesIO(blobs["beats.parquet"]))
+        res.beats = b if len(b.columns) else None
+        w = pd.read_parquet(io.BytesIO(blobs["windows.parquet"]))
+        res.windows = w if len(w.columns) else None
+    else:
+        import pyarrow.parquet as pq
+
+        def rows(name):  # row count from the footer; None for a table with no columns
+            f = pq.ParquetFile(io.BytesIO(blobs[name]))
+            return f.metadata.num_rows if f.schema_arrow.names else None
+        res.store = ShardTables(fs, d, commit["files"], {"beats": rows("beats.parquet"),
+                                                         "windows": rows("windows.parquet")})
     if res.status == "failed":
         res.tensor = res.mask = res.beats = None
+        res.store = None
     return res
 
 

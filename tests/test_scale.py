@@ -121,3 +121,75 @@ def test_chunked_and_unchunked_runs_agree():
     np.testing.assert_allclose(whole.tensor[ka.tensor_index], parts.tensor[kb.tensor_index],
                                atol=1e-4)
     assert (whole.windows.grade.to_numpy() == parts.windows.grade.to_numpy()).mean() >= 0.95
+
+
+def test_robust_dataset_statistics_exact_without_holding_values(monkeypatch):
+    # Reference: numpy.percentile (default linear interpolation) over all unmasked values.
+    # The interval narrowing is forced to run several passes by a tiny exact-gather limit.
+    import numpy as np
+
+    from prep import dataset as ds
+    monkeypatch.setattr(ds, "_EXACT", 40)
+    rng = np.random.default_rng(7)
+    batches = []
+    for n in (50, 1, 300, 17):
+        b = rng.normal(0, 1, (n, 2, 16))
+        b[:, 1] = np.round(b[:, 1], 1)  # many ties on lead 1
+        b[: n // 3, 0, :4] = 2.5        # a repeated value on lead 0
+        batches.append((b, rng.random((n, 2)) > 0.2))
+    c, s = ds.lead_stats("robust", 2, lambda: iter(batches))
+    for j in range(2):
+        v = np.concatenate([b[m[:, j], j].ravel() for b, m in batches])
+        q1, q2, q3 = np.percentile(v, [25, 50, 75])
+        assert c[j] == pytest.approx(q2, abs=1e-12)
+        assert s[j] == pytest.approx(q3 - q1, abs=1e-12)
+
+
+def test_streamed_table_rows_equal_one_concatenated_table(tmp_path):
+    # Reference: pandas.concat of the same frames, written by pyarrow in one go.
+    import pandas as pd
+
+    from prep.dataset import _ParquetRows
+    frames = [pd.DataFrame({"a": [i, i + 1], "b": [f"x{i}", None], "c": [0.5 * i, None]})
+              for i in range(7)] + [pd.DataFrame({"a": [], "b": [], "c": []})]
+    sink = _ParquetRows(tmp_path / "t.parquet", group=3)  # several row groups
+    for f in frames:
+        sink.add(f)
+    sink.finish(frames[-1])
+    import pyarrow.parquet as pq
+    assert pq.ParquetFile(tmp_path / "t.parquet").metadata.num_row_groups > 1
+    got = pd.read_parquet(tmp_path / "t.parquet")
+    want = pd.concat(frames[:-1], ignore_index=True)
+    pd.testing.assert_frame_equal(got, want, check_dtype=False)
+
+
+def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
+    # The run keeps no record's beat table in memory: read_shard(tables=False) leaves them on
+    # storage, and the dataset it assembles matches one assembled from in-memory tables.
+    import pandas as pd
+
+    from prep.api import open_dataset
+    from prep.config import Config
+    from prep.dataset import _resolve_extras, assemble
+    from prep.read import find_sources
+    from prep.shards import read_shard
+    out, _ = demo_run
+    root = out / ".shards"
+    man = json.loads((out / "manifest.json").read_text())
+    commits = {json.loads(p.read_text())["record"]: json.loads(p.read_text())
+               for p in root.glob("*/COMMIT.json")}
+    found, _ = find_sources([DEMO])
+    lazy, full = [], []
+    for s in found:
+        key = commits[s.name]["config_sha256"]
+        lazy.append(read_shard(str(root), s.name, key, None, tables=False))
+        full.append(read_shard(str(root), s.name, key, None))
+    assert all(r.beats is None and r.windows is None for r in lazy)
+    assert [r.n_beats for r in lazy] == [r.n_beats for r in full]
+    cfg = Config()
+    mapping, pmap, extra = _resolve_extras(cfg)
+    args = (cfg, man["lead_axis"], [], [], mapping, pmap, extra)
+    a = assemble(full, *args)
+    ds = open_dataset(out)
+    pd.testing.assert_frame_equal(a.table.reset_index(drop=True), ds.table, check_dtype=False)
+    assert (a.beats == ds.beats).all()
