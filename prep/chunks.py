@@ -1,6 +1,6 @@
 """Long records in overlapping chunks: bounded memory for 24-hour recordings.
 
-A WFDB record longer than ``chunks.chunk_minutes`` is read and processed one stretch at a time,
+A WFDB or EDF/EDF+C record longer than ``chunks.chunk_minutes`` is read and processed one stretch at a time,
 with ``chunks.overlap_s`` of extra signal on each side; only the beats and windows whose start
 lies in the chunk's own stretch are kept, and the pieces are joined. Chunk edges are whole quality
 windows, so window grades line up with an unchunked run. What differs from an unchunked run is
@@ -17,7 +17,7 @@ import pandas as pd
 from .config import Config
 from .model import StageLog
 from .pipeline import RecordResult, _empty_beats, _main_fault, safe_process
-from .read import Source, read_source, read_wfdb, source_inputs
+from .read import Source, read_source, record_length, source_inputs
 
 
 def chunk_plan(n: int, fs: float, cfg: Config) -> list[tuple[int, int, int, int]]:
@@ -33,9 +33,10 @@ def chunk_plan(n: int, fs: float, cfg: Config) -> list[tuple[int, int, int, int]
 
 def process_source(src: Source, cfg: Config, axis: list[str], mapping=None,
                    inputs=None) -> RecordResult:
-    """Read and process one source, in chunks when it is a long WFDB record. ``inputs``: the
+    """Read and process one source, in chunks when it is a long WFDB or EDF/EDF+C record
+    (CSV and EDF+D records are read whole). ``inputs``: the
     source's file checksums when the caller has them (files are then not hashed again)."""
-    n, fs = _length(src)
+    n, fs = record_length(src)
     plan = chunk_plan(n, fs, cfg) if n and fs > 0 else [(0, 0, 0, 0)]
     if len(plan) == 1:
         return safe_process(lambda: read_source(src, cfg.read, inputs), src.name, cfg, axis,
@@ -43,9 +44,8 @@ def process_source(src: Source, cfg: Config, axis: list[str], mapping=None,
     parts = []
     inputs = inputs or source_inputs(src, cfg.read)  # hashed once, not once per chunk
     for lo, a, b, hi in plan:  # one step per chunk
-        res = safe_process(lambda: read_wfdb(src.path, cfg.read, name=src.name, sampfrom=lo,
-                                             sampto=hi, inputs=inputs), src.name, cfg, axis,
-                           mapping)
+        res = safe_process(lambda: read_source(src, cfg.read, inputs, sampfrom=lo, sampto=hi),
+                           src.name, cfg, axis, mapping)
         if res.status == "failed":
             return RecordResult(src.name, "failed", error=f"chunk {a}-{b}: {res.error}")
         parts.append((lo, a, b, _core(lo, a, b, res)))  # drop the overlap at once: bounded memory
@@ -69,19 +69,6 @@ def _core(lo: int, a: int, b: int, res: RecordResult) -> RecordResult:
         bt.loc[bt.included, "tensor_index"] = np.arange(take.size)
         res.beats = bt
     return res
-
-
-def _length(src: Source) -> tuple[int, float]:
-    if src.kind != "wfdb":
-        return 0, 0.0
-    try:
-        import wfdb
-        h = wfdb.rdheader(str(src.path))
-        if getattr(h, "n_seg", None) or any(int(x or 1) != 1 for x in (h.samps_per_frame or [])):
-            return 0, 0.0
-        return int(h.sig_len or 0), float(h.fs or 0)
-    except Exception:
-        return 0, 0.0
 
 
 def merge_chunks(src: Source, parts, n: int, fs: float, cfg: Config) -> RecordResult:

@@ -314,7 +314,7 @@ class WindowsConfig:
 
 @dataclass(frozen=True)
 class ChunksConfig:
-    chunk_minutes: float = _f(60.0, "WFDB records longer than this are processed in chunks of this "
+    chunk_minutes: float = _f(60.0, "WFDB and EDF/EDF+C records longer than this are processed in chunks of this "
                               "length (rounded to whole quality windows), so memory stays bounded.",
                               "design choice: an hour of 12-lead 1 kHz signal is ~350 MB in float64",
                               lo=1.0, hi=10000.0)

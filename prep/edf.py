@@ -107,13 +107,30 @@ def _read_discontinuous(path: Path, h: dict):
     return onsets, signals, annotations
 
 
-def read_edf(path: str | Path, *, name: str | None = None, inputs=None) -> Record:
-    """Read the ECG channels of an EDF/EDF+ file in mV; EDF+D jumps become gaps."""
+def read_edf(path: str | Path, *, name: str | None = None, inputs=None, sampfrom: int = 0,
+             sampto: int | None = None) -> Record:
+    """Read the ECG channels of an EDF/EDF+ file in mV; EDF+D jumps become gaps.
+
+    ``sampfrom``/``sampto`` read one stretch of an EDF or EDF+C file (annotation samples then
+    count from ``sampfrom``); an EDF+D file is always read whole."""
     path = Path(path)
     h = _header(path)
     if h["reserved"].startswith("EDF+D"):
+        if sampfrom or sampto:
+            raise ValueError("EDF+D files are read whole")
         return _edf_discontinuous(path, h, name, inputs)
-    return _edf_contiguous(path, h, name, inputs)
+    return _edf_contiguous(path, h, name, inputs, sampfrom, sampto)
+
+
+def contiguous_length(path: str | Path) -> tuple[int, float]:
+    """(samples, rate) of the ECG channels of an EDF/EDF+C file from its header; (0, 0.0) for
+    EDF+D, whose length in samples depends on its record onsets."""
+    h = _header(Path(path))
+    if h["reserved"].startswith("EDF+D") or h["n_records"] <= 0 or h["record_s"] <= 0:
+        return 0, 0.0
+    rates = [s / h["record_s"] for s in h["spr"]]
+    keep, _, fs = _pick_channels(h["labels"], rates, h["dims"], str(path))
+    return int(h["n_records"] * h["spr"][keep[0]]), float(fs)
 
 
 def _pick_channels(labels, rates, dims, shown):
@@ -167,7 +184,8 @@ def _edf_discontinuous(path: Path, h: dict, name, inputs) -> Record:
                             "them kept as gaps"])
 
 
-def _edf_contiguous(path: Path, h: dict, name, inputs) -> Record:
+def _edf_contiguous(path: Path, h: dict, name, inputs, sampfrom: int = 0,
+                    sampto: int | None = None) -> Record:
     import pyedflib
 
     shown = str(path)
@@ -182,11 +200,15 @@ def _edf_contiguous(path: Path, h: dict, name, inputs) -> Record:
         rates = [float(f.getSampleFrequency(i)) for i in range(n)]
         dims = [f.getPhysicalDimension(i) for i in range(n)]
         keep, skipped, fs = _pick_channels(labels, rates, dims, shown)
-        data = np.vstack([f.readSignal(i) * scale_to_mv(dims[i]) for i in keep])
+        total = int(f.getNSamples()[keep[0]])
+        lo = int(sampfrom)
+        hi = total if sampto is None else min(total, int(sampto))
+        data = np.vstack([f.readSignal(i, start=lo, n=max(0, hi - lo)) * scale_to_mv(dims[i])
+                          for i in keep])
         onsets_a, durs, texts = f.readAnnotations()
     finally:
         f.close()
-    t0 = 0.0
+    t0 = lo / fs
     ann = None
     if len(texts):
         samp = np.round((np.asarray(onsets_a, float) - t0) * fs).astype(np.int64)

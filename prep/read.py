@@ -136,19 +136,44 @@ def source_inputs(src: Source, cfg: ReadConfig) -> list[tuple[str, str]]:
     return [(f.name, sha256_file(f)) for f in sorted(files) if f.is_file()]
 
 
-def read_source(src: Source, cfg: ReadConfig, inputs=None) -> Record:
+def read_source(src: Source, cfg: ReadConfig, inputs=None, sampfrom: int = 0,
+                sampto: int | None = None) -> Record:
     """Read any source; ``inputs`` (its files' checksums, when the caller has them) are not
-    hashed again."""
+    hashed again. ``sampfrom``/``sampto`` read one stretch of a WFDB or EDF/EDF+C record
+    (annotation samples then count from ``sampfrom``); see :func:`record_length`."""
+    ranged = {"sampfrom": sampfrom, "sampto": sampto} if (sampfrom or sampto) else {}
     if src.kind == "wfdb":
-        rec = read_wfdb(src.path, cfg, name=src.name, inputs=inputs)
+        rec = read_wfdb(src.path, cfg, name=src.name, inputs=inputs, **ranged)
     elif src.kind == "edf":
         from .edf import read_edf
-        rec = read_edf(src.path, name=src.name, inputs=inputs or source_inputs(src, cfg))
+        rec = read_edf(src.path, name=src.name, inputs=inputs or source_inputs(src, cfg),
+                       **ranged)
     else:
+        if ranged:
+            raise ValueError("CSV records are read whole")
         rec = read_csv(src.path, cfg, name=src.name, inputs=inputs)
     if rec.annotations is None:
-        rec.annotations = read_annotation_csv(_annotation_csv(src), rec.fs, rec.n_samples)
+        rec.annotations = read_annotation_csv(_annotation_csv(src), rec.fs, rec.n_samples,
+                                              offset=sampfrom)
     return rec
+
+
+def record_length(src: Source) -> tuple[int, float]:
+    """(samples, rate) of a record that can be read in stretches, from its header alone;
+    (0, 0.0) for the others (CSV, multi-segment or several-rate WFDB, EDF+D, unreadable)."""
+    try:
+        if src.kind == "wfdb":
+            import wfdb
+            h = wfdb.rdheader(str(src.path))
+            if getattr(h, "n_seg", None) or any(int(x or 1) != 1 for x in (h.samps_per_frame or [])):
+                return 0, 0.0
+            return int(h.sig_len or 0), float(h.fs or 0)
+        if src.kind == "edf":
+            from .edf import contiguous_length
+            return contiguous_length(src.path)
+    except Exception:
+        pass
+    return 0, 0.0
 
 
 def _annotation_csv(src: Source) -> Path:
@@ -156,9 +181,11 @@ def _annotation_csv(src: Source) -> Path:
     return Path(str(base) + ".annotations.csv")
 
 
-def read_annotation_csv(path: Path, fs: float, n_samples: int) -> Annotations | None:
+def read_annotation_csv(path: Path, fs: float, n_samples: int,
+                        offset: int = 0) -> Annotations | None:
     """Reference annotations from a CSV with columns ``symbol`` and ``sample`` or ``time_s``
-    (optional ``aux``), for databases that ship them that way; None when the file is absent."""
+    (optional ``aux``), for databases that ship them that way; None when the file is absent.
+    ``offset``: the record sample the signal read starts at (for a stretch of a long record)."""
     import pandas as pd
 
     if not path.exists():
@@ -176,7 +203,7 @@ def read_annotation_csv(path: Path, fs: float, n_samples: int) -> Annotations | 
     else:
         samp = (pd.to_numeric(df["time_s"], errors="coerce") * fs).round()
     ok = samp.notna().to_numpy()
-    samp = samp.to_numpy()[ok].astype(np.int64)
+    samp = samp.to_numpy()[ok].astype(np.int64) - int(offset)
     sym = df["symbol"].astype(str).str.strip().to_numpy(dtype=object)[ok]
     aux = (df["aux"].fillna("").astype(str).to_numpy(dtype=object)[ok] if "aux" in df
            else np.full(samp.size, "", dtype=object))
