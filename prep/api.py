@@ -22,6 +22,9 @@ _EVIDENCE = {
     "flat_or_clipped": ("bad_fraction", "quality", "max_bad_fraction_in_beat"),
     "unlike_neighbours": ("template_corr", "quality", "exclude_template_corr"),
     "one_lead_only": ("n_leads_seen", "rpeaks", "min_lead_template_corr"),
+    "unmatched_in_noise": ("qrs_match", "quality", "noise_min_qrs_match"),
+    "amplitude_outlier": ("amplitude_z", "quality", "amplitude_z_max"),
+    "rr_too_short": ("rr_prev_s", "quality", "min_rr_s"),
 }
 
 

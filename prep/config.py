@@ -205,9 +205,46 @@ class QualityConfig:
                                              "every lead are only flagged.", "design choice: two "
                                              "independent detectors agreeing is the bSQI idea "
                                              "(Li et al. 2008)")
+    lone_lead_min_qrs_match: float = _f(0.99, "In a record with two or more usable leads, a beat "
+                                        "in noise (every lead it keeps graded noisy by a noise "
+                                        "test) where only one lead is usable must have qrs_match "
+                                        "at least this, else it is excluded (weak_in_noise): no "
+                                        "second lead confirms it. Above 1 excludes every such "
+                                        "beat; -1 turns the rule off.",
+                                        "measured on the noise-stress benchmark (tuned on it): at "
+                                        "-6 dB electrode-motion noise the false beats still kept "
+                                        "were all in such stretches (docs/quality.md)",
+                                        lo=-1.0, hi=2.0)
+    missed_min_qrs_match: float = _f(0.95, "A beat in a noisy window (by any test) that a lead usable "
+                                     "there missed must have qrs_match at least this, else it is "
+                                     "excluded (weak_in_noise).", "measured on the noise-stress "
+                                     "benchmark (tuned on it): at 0 and 6 dB electrode-motion "
+                                     "noise the last false beats kept were seen by one of two "
+                                     "leads, qrs_match 0.73-0.93 (docs/quality.md)",
+                                     lo=-1.0, hi=1.0)
+    noise_min_qrs_match: float = _f(0.9, "A beat in a window a noise test grades noisy in a lead it "
+                                    "keeps, whose QRS (R +- qrs_half_ms on all usable leads "
+                                    "together) correlates at least this much with fewer than "
+                                    "qrs_match_k of the record's clean beats (every usable lead "
+                                    "graded good by the noise tests), is excluded "
+                                    "(unmatched_in_noise). -1 turns it off.",
+                                    "measured on the noise-stress benchmark, so tuned on it: "
+                                    "false beats from the electrode-motion record (which holds a "
+                                    "periodic QRS-like component) median 0.73, true beats in "
+                                    "noisy windows 0.997 (docs/quality.md); held-out check on "
+                                    "the nstdb 118e* records", lo=-1.0, hi=1.0)
+    qrs_half_ms: float = _f(50.0, "Half-width of the QRS segment compared by qrs_match.",
+                            "common practice, no source: a normal QRS lasts about 80-100 ms "
+                            "(from memory)", lo=10.0, hi=200.0)
+    qrs_match_k: int = _f(3, "A beat must match this many clean beats (the k-th best correlation is "
+                          "its score).", "design choice", lo=1, hi=50)
+    qrs_library_beats: int = _f(1000, "At most this many good-window beats, evenly spread over the "
+                                "record, are compared.", "design choice (cost: beats x library x "
+                                "segment)", lo=10, hi=100000)
     noise_min_template_corr: float = _f(0.5, "In a window that noise tests grade noisy in every lead "
                                         "a beat keeps, the beat must be seen by every lead usable "
-                                        "there and correlate at least this much with the running "
+                                        "there, and, where the record has too few clean beats for "
+                                        "qrs_match, correlate at least this much with the running "
                                         "template, else it is excluded (weak_in_noise).",
                                         "measured: at 0 dB em/ma noise, false beats had median "
                                         "correlation 0.31, true beats 0.97 (docs/quality.md)",

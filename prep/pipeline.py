@@ -24,7 +24,7 @@ from .leads import match_lead
 from .model import Record, StageLog
 from .read import BEAT_SYMBOLS
 from .powerline import remove_powerline
-from .quality import hf_ratio, high_freq, lead_faults, template_corr, window_fraction
+from .quality import hf_ratio, high_freq, lead_faults, qrs_match, template_corr, window_fraction
 from .resample import cut_and_resample
 from .rpeaks import detect_leads, fuse_leads
 from .windows import grade_codes, lead_windows
@@ -34,11 +34,11 @@ log = logging.getLogger("prep")
 
 BEAT_COLUMNS = ["beat_id", "record", "r_sample", "r_time_s", "rr_prev_s", "rr_next_s", "included",
                 "reasons", "tensor_index", "flags", "label", "class", "rhythm", "detect_conf", "n_leads_seen",
-                "template_corr", "hf_ratio", "bad_fraction", "amplitude_z", "window_grade",
-                "second_detector"]
+                "template_corr", "qrs_match", "hf_ratio", "bad_fraction", "amplitude_z",
+                "window_grade", "second_detector"]
 BEAT_TYPES = ["str", "str", "int64", "float64", "float64", "float64", "bool", "str", "int64",
-              "str", "str", "str", "str", "float64", "int64", "float64", "float64", "float64", "float64",
-              "str", "bool"]  # one per column of BEAT_COLUMNS
+              "str", "str", "str", "str", "float64", "int64", "float64", "float64", "float64",
+              "float64", "float64", "str", "bool"]  # one per column of BEAT_COLUMNS
 
 
 @dataclass
@@ -250,6 +250,9 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     for j in np.flatnonzero(usable):
         n_usable_here += grades[j][np.minimum(r[vi] // L, grades[j].size - 1)] < 2
     scores["_n_here"] = n_usable_here
+    scores["_lone"] = (n_usable_here <= 1) & (int(usable.sum()) >= 2)
+    scores["qrs_match"] = _qrs_match(y, r, vi, usable, grades, noise_grades, L, fs, cfg.quality)
+    scores["_noise_any"] = ((n_slot >= 1) & beat_mask).any(axis=1)
     flags: list[list[str]] = [[] for _ in range(n)]
     _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, res, all_noisy)
 
@@ -381,6 +384,27 @@ def _beat_scores(r, vi, sv, ev, beats_mv, beat_mask, rows_src, notched, bad, fs,
     return out
 
 
+def _qrs_match(y, r, vi, usable, grades, noise_grades, L, fs, q) -> np.ndarray:
+    """qrs_match for every row (NaN where the beat has no window): the cut beats' QRS against
+    the beats whose every usable lead is in a window the noise tests grade good (rhythm tests
+    are left out on purpose: a stretch of bigeminy is rhythm-noisy, and its ectopic beats must
+    be in the library)."""
+    out = np.full(r.size, np.nan)
+    if vi.size == 0 or q.noise_min_qrs_match <= -1:
+        return out
+    rv = r[vi]
+    g = np.stack([grades[j][np.minimum(rv // L, grades[j].size - 1)] for j in range(len(grades))],
+                 axis=1)
+    ng = np.stack([noise_grades[j][np.minimum(rv // L, noise_grades[j].size - 1)]
+                   for j in range(len(grades))], axis=1)
+    lead_ok = usable[None, :] & (g < 2)
+    clean = ((ng == 0) & (g < 2)) | ~usable[None, :]
+    library = rv[clean.all(axis=1) & lead_ok.any(axis=1)]
+    out[vi] = qrs_match(y, rv, lead_ok, library, fs, q.qrs_half_ms, q.qrs_match_k,
+                        q.qrs_library_beats)
+    return out
+
+
 def _masked_median(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
     w = np.where(mask, v, np.nan)
     ok = mask.any(axis=1)
@@ -405,10 +429,21 @@ def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, r
     # in every lead in a good window (a wide ectopic beat the peer misses) is kept with a flag
     weak = scores.pop("_weak")[vi] | (((g_slot >= 1) | ~beat_mask).all(axis=1) & has)
     in_noise = scores.pop("_in_noise")
-    unconfirmed = (scores.pop("_n_seen") < scores.pop("_n_here")) | \
-        ~(tc >= q.noise_min_template_corr)
+    # a beat in noise must be seen by every lead usable there and look like the record's clean
+    # beats: a low qrs_match is unmatched_in_noise (below); where the record has too few clean
+    # beats for qrs_match, the beat must be like the running template instead
+    qm = scores["qrs_match"][vi]
+    unlike = np.isnan(qm) & ~(tc >= q.noise_min_template_corr)
+    missed = scores.pop("_n_seen") < scores.pop("_n_here")
+    unconfirmed = missed | unlike
+    lone = scores.pop("_lone")  # no second usable lead there: a stricter QRS match is needed
+    if q.lone_lead_min_qrs_match > -1:
+        unconfirmed |= lone & ~(qm >= q.lone_lead_min_qrs_match)
     checks = [
-        (has & in_noise & unconfirmed, reasons, "weak_in_noise"),
+        (has & ((in_noise & unconfirmed) |
+                (noisy_w & missed & ~(qm >= q.missed_min_qrs_match))), reasons, "weak_in_noise"),
+        (has & scores.pop("_noise_any") & (scores["qrs_match"][vi] < q.noise_min_qrs_match),
+         reasons, "unmatched_in_noise"),
         (~has & slot_ok.any() & ~all_noisy, reasons, "unusable_window"),
         (noisy_w, reasons if wq.exclude_noisy else flags, "noisy_window"),
         (has & (scores["bad_fraction"][vi] > q.max_bad_fraction_in_beat), reasons,
@@ -444,6 +479,7 @@ def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, r
     res.logs.append(StageLog("quality", params={k: getattr(q, k) for k in q.__dataclass_fields__},
                              counts={c: sum(c in x for x in reasons) for c in
                                      ("flat_or_clipped", "high_freq_noise", "unlike_neighbours",
+                                      "unmatched_in_noise",
                                       "amplitude_outlier", "detector_disagreement",
                                       "unusable_window", "annotated_noise", "rr_too_short")}))
 

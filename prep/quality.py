@@ -123,3 +123,54 @@ def template_corr(beats: np.ndarray, n_template: int, stride: int = 8) -> np.nda
         den = np.sqrt((x * x).sum(-1) * (t * t).sum(-1))
         out[i] = np.where(den > 1e-12, num / np.maximum(den, 1e-12), 0.0)
     return out
+
+
+def qrs_match(y: np.ndarray, r: np.ndarray, usable: np.ndarray, library: np.ndarray, fs: float,
+              half_ms: float, k: int, max_library: int) -> np.ndarray:
+    """How well each beat's QRS, all usable leads together, matches the record's clean beats.
+
+    ``y``: filtered signal (n_leads, n); ``r``: R samples of the beats to score; ``usable``:
+    (n_beats, n_leads) leads to compare for each beat; ``library``: R samples of reference beats
+    (beats in good windows). Each beat's segment R +- ``half_ms`` on its usable leads is joined
+    into one vector (mean removed per lead, so the leads' relative amplitudes and polarities,
+    the heart's electrical axis, count), and correlated with the same leads of every library
+    beat (at most ``max_library``, evenly spread). The score is the ``k``-th best correlation
+    (a beat's match with itself excluded), so a beat must look like ``k`` clean beats of its own
+    record; a shape that occurs only a few times in clean stretches scores lower.
+    Returns (n_beats,) in [-1, 1]; NaN where fewer than ``k + 1`` library beats exist.
+    """
+    n_b = r.size
+    out = np.full(n_b, np.nan)
+    if library.size > max_library:
+        library = library[np.linspace(0, library.size - 1, max_library).round().astype(int)]
+    if n_b == 0 or library.size < k + 1:
+        return out
+    h = max(1, int(round(half_ms * fs / 1000)))
+    off = np.arange(-h, h + 1)
+    n = y.shape[1]
+
+    def segments(at):  # (n_at, n_leads, 2h+1), mean removed per lead
+        s = y[:, np.clip(at[:, None] + off[None, :], 0, n - 1)].transpose(1, 0, 2)
+        return s - s.mean(axis=2, keepdims=True)
+
+    lib = segments(library).astype(np.float32)
+    self_of = np.searchsorted(library, r)
+    self_of = np.where((self_of < library.size) &
+                       (library[np.minimum(self_of, library.size - 1)] == r), self_of, -1)
+    patterns, which = np.unique(usable, axis=0, return_inverse=True)
+    which = np.asarray(which).ravel()
+    for p_i, pat in enumerate(patterns):  # one step per pattern of usable leads (few)
+        if not pat.any():
+            continue
+        rows = np.flatnonzero(which == p_i)
+        L = lib[:, pat].reshape(library.size, -1)
+        L = L / np.maximum(np.linalg.norm(L, axis=1, keepdims=True), 1e-9)
+        for a in range(0, rows.size, 2048):
+            i = rows[a:a + 2048]
+            B = segments(r[i])[:, pat].reshape(i.size, -1).astype(np.float32)
+            B = B / np.maximum(np.linalg.norm(B, axis=1, keepdims=True), 1e-9)
+            C = B @ L.T
+            own = self_of[i] >= 0
+            C[np.flatnonzero(own), self_of[i][own]] = -np.inf
+            out[i] = np.partition(C, C.shape[1] - k, axis=1)[:, C.shape[1] - k]
+    return out

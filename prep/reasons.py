@@ -12,9 +12,13 @@ REASONS: dict[str, tuple[str, str]] = {
                                    "seen only in unusable stretches)"),
     "noisy_window": ("windows", "a used lead is graded noisy at this beat and windows.exclude_noisy "
                                 "is on"),
-    "weak_in_noise": ("quality", "in a window graded noisy by noise tests in every lead it keeps, "
-                                 "and either missed by a lead usable there or unlike the running "
-                                 "template (below quality.noise_min_template_corr)"),
+    "weak_in_noise": ("quality", "in a noisy window and not confirmed: missed by a lead usable "
+                                 "there, or alone in a noisy lead, without the QRS match to the "
+                                 "record's clean beats that quality.missed_min_qrs_match / "
+                                 "lone_lead_min_qrs_match ask for (docs/quality.md)"),
+    "unmatched_in_noise": ("quality", "in a noisy window, its QRS (all usable leads together) "
+                                      "correlates at least quality.noise_min_qrs_match with fewer "
+                                      "than quality.qrs_match_k beats of the record's good windows"),
     "off_edge": ("segment", "the beat window runs past the start or end of the record"),
     "in_gap": ("segment", "the beat window overlaps missing samples (a gap)"),
     "no_rr": ("segment", "mode 'rr' needs both neighbouring beats, and one is missing"),
