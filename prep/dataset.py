@@ -103,17 +103,15 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
     chash = cfg.sha256(extra)
     root = str(shards) if shards else str(out / ".shards")
     _prepare_out(out, overwrite, chash)
-
-    if cfg.leads.select:
-        axis = resolve_axis(cfg.leads.select)
-    else:
-        peeks = [lp for lp in (_peek_leads(s, cfg) for s in found) if lp]
-        axis = default_axis(peeks)
-        if not axis:
-            raise ConfigError("the records share no ECG lead; choose the lead axis with --leads "
-                              "(for example --leads II)")
-    # inputs are hashed first: a committed shard is reused only for unchanged inputs
-    inputs = [_inputs_or_empty(s, cfg) for s in found]
+    # workers start (and warm up) while the parent reads headers and hashes the inputs
+    n_pool = min(_n_workers(workers), len(found))
+    pool = _start_pool(n_pool) if not dask and n_pool > 1 else None
+    try:
+        axis, inputs = _axis_and_inputs(found, cfg)
+    except BaseException:
+        if pool is not None:
+            pool.shutdown(cancel_futures=True)
+        raise
     key = _shard_hash(json.dumps({"config": chash, "axis": axis}))
     results: list = [None] * len(found)
     todo = []
@@ -130,7 +128,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
     if len(found) - len(todo):
         log.info("reusing %d committed shards", len(found) - len(todo))
     tasks = [(found[i], cfg, axis, mapping, root, key, inputs[i]) for i in todo]
-    for i, error in zip(todo, _execute(tasks, workers, dask)):
+    for i, error in zip(todo, _execute(tasks, workers, dask, pool)):
         done += 1
         res = read_shard(root, found[i].name, key, inputs[i], tables=False)
         if res is None:  # the worker died before committing: report, never trust half a shard
@@ -160,6 +158,20 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
     return _summary(out, a)
 
 
+def _axis_and_inputs(found: list[Source], cfg: Config) -> tuple[list[str], list]:
+    """The lead axis (from the config or the records' headers) and each source's input files
+    with their SHA-256 (a committed shard is reused only for unchanged inputs)."""
+    if cfg.leads.select:
+        axis = resolve_axis(cfg.leads.select)
+    else:
+        peeks = [lp for lp in (_peek_leads(s, cfg) for s in found) if lp]
+        axis = default_axis(peeks)
+        if not axis:
+            raise ConfigError("the records share no ECG lead; choose the lead axis with --leads "
+                              "(for example --leads II)")
+    return axis, [_inputs_or_empty(s, cfg) for s in found]
+
+
 def _shard_hash(key: str) -> str:
     return hashlib.sha256(key.encode()).hexdigest()
 
@@ -174,35 +186,60 @@ def _inputs_or_empty(src: Source, cfg: Config) -> list:
 def _shard_task(args) -> str:
     """Process one record and write its shard (in a worker process or on a Dask worker)."""
     from .chunks import process_source
+    from threadpoolctl import threadpool_limits
     src, cfg, axis, mapping, root, key, inputs = args
-    res = process_source(src, cfg, axis, mapping, [tuple(x) for x in inputs] or None)
+    # one BLAS thread per task: N worker processes then use N cores, not N x BLAS threads, and
+    # the results cannot depend on how many threads a matrix product was split over
+    with threadpool_limits(limits=1):
+        res = process_source(src, cfg, axis, mapping, [tuple(x) for x in inputs] or None)
     if inputs and not res.inputs:  # a record that failed still names the files it came from
         res.inputs = [tuple(x) for x in inputs]
     write_shard(root, res, key, inputs)
     return res.error
 
 
-def _execute(tasks: list, workers: int | None, dask: str | None):
-    """Run shard tasks; yields each task's error text ('' when fine) in task order."""
+def _n_workers(workers: int | None) -> int:
+    return max(1, workers or int(os.environ.get("BEATMILL_WORKERS", 0) or 0) or os.cpu_count() or 1)
+
+
+def _warm() -> None:
+    """Pool initializer: import the second detector's library (about 1 s) while the parent is
+    still hashing inputs, instead of on each worker's first record."""
+    import neurokit2  # noqa: F401
+
+
+def _start_pool(n: int):
+    """A process pool of ``n`` workers, warming up at once (fork where the platform has it:
+    children need not re-import the caller's main module, such as a notebook or an unguarded
+    script; elsewhere spawn)."""
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
+    method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
+    pool = ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context(method), initializer=_warm)
+    for _ in range(n):  # start every worker now (the pool would start them one task at a time)
+        pool.submit(int)
+    return pool
+
+
+def _execute(tasks: list, workers: int | None, dask: str | None, pool=None):
+    """Run shard tasks; yields each task's error text ('' when fine) in task order.
+    ``pool``: a pool from :func:`_start_pool` to use (and shut down)."""
     if not tasks:
+        if pool is not None:
+            pool.shutdown(cancel_futures=True)
         return
     if dask:
         yield from _execute_dask(tasks, dask)
         return
-    n = workers or int(os.environ.get("BEATMILL_WORKERS", 0) or 0) or os.cpu_count() or 1
-    n = max(1, min(n, len(tasks)))
-    if n == 1:
+    n = min(_n_workers(workers), len(tasks))
+    if n == 1 and pool is None:
         for t in tasks:
             yield _shard_task(t)
         return
-    import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor
     from concurrent.futures.process import BrokenProcessPool
 
-    # fork where the platform has it: children need not re-import the caller's main module
-    # (a notebook or an unguarded script); elsewhere spawn
-    method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
-    with ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context(method)) as pool:
+    pool = pool or _start_pool(n)
+    with pool:
         futures = [pool.submit(_shard_task, t) for t in tasks]
         for f in futures:  # in task order; the pool works ahead meanwhile
             try:
@@ -364,6 +401,8 @@ class _ParquetRows(_Rows):
             sch = pa.Schema.from_pandas(df, preserve_index=False)
             self.schema = pa.schema([f.with_type(pa.string()) if pa.types.is_null(f.type) else f
                                      for f in sch]).remove_metadata()
+        # the fixed columns, in order (a column a record lacks is written as nulls)
+        df = df.reindex(columns=self.schema.names)
         table = pa.Table.from_pandas(df, schema=self.schema, preserve_index=False)
         if self.writer is None:
             self.writer = pq.ParquetWriter(self.path, self.schema, compression="zstd")
@@ -412,21 +451,34 @@ def _beats_of(r: RecordResult, columns: list[str] | None = None) -> pd.DataFrame
     return b
 
 
-def _rule_reasons(b: pd.DataFrame, split: str, fixed: bool, train_classes: set) -> np.ndarray:
-    """Exclusions the split settings add to a record's kept beats ('' = none)."""
-    extra = np.full(len(b), "", dtype=object)
+def _columns_of(r: RecordResult, columns: list[str]) -> dict[str, np.ndarray]:
+    """A few beat-table columns as arrays: from memory, or read from the shard without pandas
+    (consolidation reads them several times, so this read must be cheap)."""
+    if r.beats is None and r.store is not None:
+        got = r.store.arrays("beats", columns)
+        if got is not None:
+            return got
+    b = _beats_of(r, columns)
+    return {c: b[c].to_numpy() for c in columns}
+
+
+def _rule_reasons(b, split: str, fixed: bool, train_classes: set) -> np.ndarray:
+    """Exclusions the split settings add to a record's kept beats ('' = none). ``b``: a beat
+    table or a mapping of its columns."""
+    inc = np.asarray(b["included"], bool)
+    extra = np.full(inc.size, "", dtype=object)
     if fixed and not split:
-        extra[b["included"].to_numpy()] = "not_in_split_lists"
+        extra[inc] = "not_in_split_lists"
     elif split == "train" and train_classes:
-        off = b["included"].to_numpy() & ~b["class"].isin(train_classes).to_numpy()
+        off = inc & ~np.isin(np.asarray(b["class"], dtype=object), sorted(train_classes))
         extra[off] = "not_train_class"
     return extra
 
 
-def _final_rows(b: pd.DataFrame, extra: np.ndarray) -> np.ndarray:
+def _final_rows(b, extra: np.ndarray) -> np.ndarray:
     """Positions in ``b`` of the beats that reach the tensor, in tensor order (time)."""
-    idx = np.flatnonzero(b["included"].to_numpy() & (extra == ""))
-    return idx[np.argsort(b["r_sample"].to_numpy()[idx], kind="stable")]
+    idx = np.flatnonzero(np.asarray(b["included"], bool) & (extra == ""))
+    return idx[np.argsort(np.asarray(b["r_sample"])[idx], kind="stable")]
 
 
 def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: list[str],
@@ -452,10 +504,11 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     patients = [patient_of(r.name, r.comments, pmap, cfg.split.patient_pattern) for r in results]
     parts = []
     for r, p in zip(results, patients):
-        b = _beats_of(r, ["included", "class"])
-        vc = b.loc[b["included"], "class"].value_counts(dropna=False)
-        parts.append(_Part(p, "", len(b), {(None if pd.isna(k) else str(k)): int(v)
-                                          for k, v in vc.items()}))
+        b = _columns_of(r, ["included", "class"])
+        inc = np.asarray(b["included"], bool)
+        vc = pd.Series(np.asarray(b["class"], dtype=object)[inc]).value_counts(dropna=False)
+        parts.append(_Part(p, "", inc.size, {(None if pd.isna(k) else str(k)): int(v)
+                                            for k, v in vc.items()}))
     sp = cfg.split
     fixed = bool(sp.train_patients or sp.val_patients or sp.test_patients)
     if fixed:
@@ -498,9 +551,9 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
 
     def local_rows(k: int) -> np.ndarray:
         """Shard tensor rows of record k's final beats, in tensor order."""
-        b = _beats_of(results[k], ["included", "class", "r_sample", "tensor_index"])
+        b = _columns_of(results[k], ["included", "class", "r_sample", "tensor_index"])
         rows = _final_rows(b, _rule_reasons(b, parts[k].split, fixed, train_classes))
-        return b["tensor_index"].to_numpy()[rows]
+        return np.asarray(b["tensor_index"])[rows]
 
     tensor, mask, center, scale, norm_note = _gather_normalized(
         results, [(k, parts[k].split) for k in order], local_rows, n_total, cfg, n_ax, n_s, alloc)

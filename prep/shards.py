@@ -124,17 +124,30 @@ class ShardTables:
     def __init__(self, fs, folder: str, hashes: dict, n_rows: dict):
         self.fs, self.folder, self.hashes, self.n_rows = fs, folder, hashes, n_rows
 
-    def load(self, table: str, columns: list[str] | None = None) -> pd.DataFrame | None:
-        """``table`` is 'beats' or 'windows'; None when the record wrote no such table."""
+    def _bytes(self, table: str) -> bytes:
         name = f"{table}.parquet"
         with self.fs.open(f"{self.folder}/{name}", "rb") as fh:
             data = fh.read()
         if hashlib.sha256(data).hexdigest() != self.hashes.get(name):
             raise OSError(f"shard {self.folder}: {name} changed after it was committed; run the "
                           "same command again to redo this record")
+        return data
+
+    def load(self, table: str, columns: list[str] | None = None) -> pd.DataFrame | None:
+        """``table`` is 'beats' or 'windows'; None when the record wrote no such table."""
+        data = self._bytes(table)
         if self.n_rows.get(table) is None:
             return None
         return pd.read_parquet(io.BytesIO(data), columns=columns)
+
+    def arrays(self, table: str, columns: list[str]) -> dict[str, np.ndarray] | None:
+        """Some columns as numpy arrays, read by pyarrow without building a DataFrame."""
+        import pyarrow.parquet as pq
+        data = self._bytes(table)
+        if self.n_rows.get(table) is None:
+            return None
+        t = pq.read_table(io.BytesIO(data), columns=columns)
+        return {c: t.column(c).to_numpy() for c in columns}
 
 
 def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
