@@ -18,7 +18,8 @@ REASONS: dict[str, tuple[str, str]] = {
                                  "lone_lead_min_qrs_match ask for (docs/quality.md)"),
     "unmatched_in_noise": ("quality", "in a noisy window, its QRS (all usable leads together) "
                                       "correlates at least quality.noise_min_qrs_match with fewer "
-                                      "than quality.qrs_match_k beats of the record's good windows"),
+                                      "than quality.qrs_match_k of the record's clean beats (every "
+                                      "usable lead graded good by the noise tests there)"),
     "off_edge": ("segment", "the beat window runs past the start or end of the record"),
     "in_gap": ("segment", "the beat window overlaps missing samples (a gap)"),
     "no_rr": ("segment", "mode 'rr' needs both neighbouring beats, and one is missing"),
