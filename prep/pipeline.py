@@ -251,7 +251,8 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
         n_usable_here += grades[j][np.minimum(r[vi] // L, grades[j].size - 1)] < 2
     scores["_n_here"] = n_usable_here
     scores["_lone"] = (n_usable_here <= 1) & (int(usable.sum()) >= 2)
-    scores["qrs_match"] = _qrs_match(y, r, vi, usable, grades, noise_grades, L, fs, cfg.quality)
+    scores["qrs_match"], scores["_qrs_library"] = _qrs_match(y, r, vi, usable, grades,
+                                                             noise_grades, L, fs, cfg.quality)
     scores["_noise_any"] = ((n_slot >= 1) & beat_mask).any(axis=1)
     flags: list[list[str]] = [[] for _ in range(n)]
     _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, res, all_noisy)
@@ -384,14 +385,14 @@ def _beat_scores(r, vi, sv, ev, beats_mv, beat_mask, rows_src, notched, bad, fs,
     return out
 
 
-def _qrs_match(y, r, vi, usable, grades, noise_grades, L, fs, q) -> np.ndarray:
-    """qrs_match for every row (NaN where the beat has no window): the cut beats' QRS against
-    the beats whose every usable lead is in a window the noise tests grade good (rhythm tests
-    are left out on purpose: a stretch of bigeminy is rhythm-noisy, and its ectopic beats must
-    be in the library)."""
+def _qrs_match(y, r, vi, usable, grades, noise_grades, L, fs, q) -> tuple[np.ndarray, int]:
+    """qrs_match for every row (NaN where the beat has no window), and the number of clean
+    beats compared against: the cut beats whose every usable lead is in a window the noise
+    tests grade good (rhythm tests are left out on purpose: a stretch of bigeminy is
+    rhythm-noisy, and its ectopic beats must be in the library)."""
     out = np.full(r.size, np.nan)
-    if vi.size == 0 or q.noise_min_qrs_match <= -1:
-        return out
+    if vi.size == 0:
+        return out, 0
     rv = r[vi]
     g = np.stack([grades[j][np.minimum(rv // L, grades[j].size - 1)] for j in range(len(grades))],
                  axis=1)
@@ -402,7 +403,7 @@ def _qrs_match(y, r, vi, usable, grades, noise_grades, L, fs, q) -> np.ndarray:
     library = rv[clean.all(axis=1) & lead_ok.any(axis=1)]
     out[vi] = qrs_match(y, rv, lead_ok, library, fs, q.qrs_half_ms, q.qrs_match_k,
                         q.qrs_library_beats)
-    return out
+    return out, int(min(library.size, q.qrs_library_beats))
 
 
 def _masked_median(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
@@ -442,8 +443,8 @@ def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, r
     checks = [
         (has & ((in_noise & unconfirmed) |
                 (noisy_w & missed & ~(qm >= q.missed_min_qrs_match))), reasons, "weak_in_noise"),
-        (has & scores.pop("_noise_any") & (scores["qrs_match"][vi] < q.noise_min_qrs_match),
-         reasons, "unmatched_in_noise"),
+        (has & scores.pop("_noise_any") & (qm < q.noise_min_qrs_match), reasons,
+         "unmatched_in_noise"),
         (~has & slot_ok.any() & ~all_noisy, reasons, "unusable_window"),
         (noisy_w, reasons if wq.exclude_noisy else flags, "noisy_window"),
         (has & (scores["bad_fraction"][vi] > q.max_bad_fraction_in_beat), reasons,
@@ -476,10 +477,14 @@ def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, r
                                "overlaps_neighbour")):
         for i in vi[np.flatnonzero(hit)]:
             target[i].append(code)
+    n_lib = scores.pop("_qrs_library")
     res.logs.append(StageLog("quality", params={k: getattr(q, k) for k in q.__dataclass_fields__},
+                             derived={"qrs_match_clean_beats": n_lib,
+                                      "qrs_match": "computed" if n_lib > q.qrs_match_k else
+                                      "too few clean beats: NaN, running-template test used"},
                              counts={c: sum(c in x for x in reasons) for c in
                                      ("flat_or_clipped", "high_freq_noise", "unlike_neighbours",
-                                      "unmatched_in_noise",
+                                      "unmatched_in_noise", "weak_in_noise",
                                       "amplitude_outlier", "detector_disagreement",
                                       "unusable_window", "annotated_noise", "rr_too_short")}))
 
