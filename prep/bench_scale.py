@@ -4,11 +4,12 @@ records, and a 24-hour two-lead record.
     python -m prep.bench_scale [--ref ../shared/ref-ecg] [--work /tmp/beatmill-scale] [--skip-24h]
                                [--repeat 3]
 
-Throughput is measured on 20 and on 40 records. Records are copies of the 30-minute, two-lead, 360 Hz MIT-BIH records 100, 105 and 119 (made in
-the work folder, never in the repository); the 24-hour record repeats record 100 48 times.
-Peak memory is the maximum resident set size of a child process doing only that step.
-Throughput is the best of ``--repeat`` runs of each (1 and 2 workers taken in turn), as the
-speed benchmark does: on a shared 2-core machine single runs vary by 20 % or more.
+Throughput is measured on 20 and on 40 records. Records are copies of the 30-minute, two-lead,
+360 Hz MIT-BIH records 100, 105 and 119 (made in the work folder, never in the repository); the
+24-hour record repeats record 100 48 times. Peak memory is the maximum resident set size of a
+child process doing only that step. Throughput is the best of ``--repeat`` runs of each (1 and 2
+workers taken in turn), as the speed benchmark does: on a shared 2-core machine single runs vary
+by 20 % or more.
 """
 from __future__ import annotations
 

@@ -1,11 +1,12 @@
 """Long records in overlapping chunks: bounded memory for 24-hour recordings.
 
-A WFDB or EDF/EDF+C record longer than ``chunks.chunk_minutes`` is read and processed one stretch at a time,
-with ``chunks.overlap_s`` of extra signal on each side; only the beats and windows whose start
-lies in the chunk's own stretch are kept, and the pieces are joined. Chunk edges are whole quality
-windows, so window grades line up with an unchunked run. What differs from an unchunked run is
-what each chunk decides for itself: the mains frequency, the primary lead of fusion, lead
-rejection and the amplitude reference of ``amplitude_z`` are per chunk (one hour by default).
+A WFDB or EDF/EDF+C record longer than ``chunks.chunk_minutes`` is read and processed one stretch
+at a time, with ``chunks.overlap_s`` of extra signal on each side; only the beats and windows
+whose start lies in the chunk's own stretch are kept, and the pieces are joined. Chunk edges are
+whole quality windows, so window grades line up with an unchunked run. What differs from an
+unchunked run is what each chunk decides for itself: the mains frequency, the primary lead of
+fusion, lead rejection and the amplitude reference of ``amplitude_z`` are per chunk (one hour by
+default).
 """
 from __future__ import annotations
 

@@ -215,16 +215,17 @@ class QualityConfig:
                                         "-6 dB electrode-motion noise the false beats still kept "
                                         "were all in such stretches (docs/quality.md)",
                                         lo=-1.0, hi=2.0)
-    missed_min_qrs_match: float = _f(0.95, "A beat in a noisy window (by any test) that a lead usable "
-                                     "there missed must have qrs_match at least this, else it is "
-                                     "excluded (weak_in_noise).", "measured on the noise-stress "
+    missed_min_qrs_match: float = _f(0.95, "A beat in a noisy window (by any test) that a lead "
+                                     "usable there missed must have qrs_match at least this, "
+                                     "else it is excluded (weak_in_noise).",
+                                     "measured on the noise-stress "
                                      "benchmark (tuned on it): at 0 and 6 dB electrode-motion "
                                      "noise the last false beats kept were seen by one of two "
                                      "leads, qrs_match 0.73-0.93 (docs/quality.md)",
                                      lo=-1.0, hi=1.0)
-    noise_min_qrs_match: float = _f(0.9, "A beat in a window a noise test grades noisy in a lead it "
-                                    "keeps, whose QRS (R +- qrs_half_ms on all usable leads "
-                                    "together) correlates at least this much with fewer than "
+    noise_min_qrs_match: float = _f(0.9, "A beat in a window a noise test grades noisy in a "
+                                    "lead it keeps, whose QRS (R +- qrs_half_ms on all usable "
+                                    "leads together) correlates at least this much with fewer than "
                                     "qrs_match_k of the record's clean beats (every usable lead "
                                     "graded good by the noise tests), is excluded "
                                     "(unmatched_in_noise). -1 turns it off.",
@@ -236,8 +237,8 @@ class QualityConfig:
     qrs_half_ms: float = _f(50.0, "Half-width of the QRS segment compared by qrs_match.",
                             "common practice, no source: a normal QRS lasts about 80-100 ms "
                             "(from memory)", lo=10.0, hi=200.0)
-    qrs_match_k: int = _f(3, "A beat must match this many clean beats (the k-th best correlation is "
-                          "its score).", "design choice", lo=1, hi=50)
+    qrs_match_k: int = _f(3, "A beat must match this many clean beats (the k-th best "
+                          "correlation is its score).", "design choice", lo=1, hi=50)
     qrs_library_beats: int = _f(1000, "At most this many good-window beats, evenly spread over the "
                                 "record, are compared.", "design choice (cost: beats x library x "
                                 "segment)", lo=10, hi=100000)
@@ -351,7 +352,8 @@ class WindowsConfig:
 
 @dataclass(frozen=True)
 class ChunksConfig:
-    chunk_minutes: float = _f(60.0, "WFDB and EDF/EDF+C records longer than this are processed in chunks of this "
+    chunk_minutes: float = _f(60.0, "WFDB and EDF/EDF+C records longer than this are processed "
+                              "in chunks of this "
                               "length (rounded to whole quality windows), so memory stays bounded.",
                               "design choice: an hour of 12-lead 1 kHz signal is ~350 MB in float64",
                               lo=1.0, hi=10000.0)

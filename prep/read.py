@@ -165,7 +165,8 @@ def record_length(src: Source) -> tuple[int, float]:
         if src.kind == "wfdb":
             import wfdb
             h = wfdb.rdheader(str(src.path))
-            if getattr(h, "n_seg", None) or any(int(x or 1) != 1 for x in (h.samps_per_frame or [])):
+            several_rates = any(int(x or 1) != 1 for x in (h.samps_per_frame or []))
+            if getattr(h, "n_seg", None) or several_rates:
                 return 0, 0.0
             return int(h.sig_len or 0), float(h.fs or 0)
         if src.kind == "edf":

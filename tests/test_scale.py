@@ -200,7 +200,6 @@ def test_edf_record_in_chunks_agrees_with_one_piece(tmp_path):
     # MIT-BIH 100, first 12 minutes, written as EDF+C with its beat labels by pyedflib (the
     # reference EDF library), run in 3-minute chunks against one piece.
     pyedflib = pytest.importorskip("pyedflib")
-    import numpy as np
     import wfdb
 
     from prep.chunks import process_source
