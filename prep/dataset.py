@@ -360,33 +360,42 @@ class Assembled:
 
 
 class _Rows:
-    """Where consolidation puts table rows, a record at a time: kept in memory by default;
-    :class:`_ParquetRows` streams them into a file instead."""
+    """Where consolidation puts table rows (pyarrow Tables or DataFrames), a record at a time:
+    kept in memory and returned as one DataFrame by default; :class:`_ParquetRows` streams them
+    into a file instead."""
 
-    def __init__(self):
-        self.parts: list[pd.DataFrame] = []
+    def __init__(self, schema=None):
+        self.parts: list = []
+        self.schema = schema
 
-    def add(self, df: pd.DataFrame) -> None:
-        self.parts.append(df)
+    def add(self, rows) -> None:
+        t = _arrow(rows)
+        if t.num_rows:
+            self.parts.append(t)
 
     def finish(self, empty: pd.DataFrame) -> pd.DataFrame | None:
-        return pd.concat(self.parts, ignore_index=True) if self.parts else empty
+        import pyarrow as pa
+        if not self.parts:
+            return empty
+        return pa.concat_tables(self.parts, promote_options="default").to_pandas()
 
 
 class _ParquetRows(_Rows):
     """Rows written to a Parquet file in row groups of about ``group`` rows; memory holds one
-    group at most. The schema is fixed by ``schema`` or by the first rows written."""
+    group at most. The schema is fixed by ``schema`` or by the first rows written (a column
+    later rows lack is written as nulls; one they add is left out)."""
 
     def __init__(self, path: Path, schema=None, group: int = 65536):
-        super().__init__()
-        self.path, self.schema, self.group = path, schema, group
+        super().__init__(schema)
+        self.path, self.group = path, group
         self.writer = None
         self.n = 0
 
-    def add(self, df: pd.DataFrame) -> None:
-        if len(df):
-            self.parts.append(df)
-            self.n += len(df)
+    def add(self, rows) -> None:
+        t = _arrow(rows)
+        if t.num_rows:
+            self.parts.append(t)
+            self.n += t.num_rows
         if self.n >= self.group:
             self._flush()
 
@@ -395,15 +404,12 @@ class _ParquetRows(_Rows):
         import pyarrow.parquet as pq
         if not self.parts:
             return
-        df = pd.concat(self.parts, ignore_index=True)
-        self.parts, self.n = [], 0
         if self.schema is None:  # an all-empty column would be typed null: make it text
-            sch = pa.Schema.from_pandas(df, preserve_index=False)
+            sch = pa.concat_tables(self.parts, promote_options="default").schema
             self.schema = pa.schema([f.with_type(pa.string()) if pa.types.is_null(f.type) else f
                                      for f in sch]).remove_metadata()
-        # the fixed columns, in order (a column a record lacks is written as nulls)
-        df = df.reindex(columns=self.schema.names)
-        table = pa.Table.from_pandas(df, schema=self.schema, preserve_index=False)
+        table = pa.concat_tables([_conform(t, self.schema) for t in self.parts])
+        self.parts, self.n = [], 0
         if self.writer is None:
             self.writer = pq.ParquetWriter(self.path, self.schema, compression="zstd")
         self.writer.write_table(table)
@@ -420,6 +426,21 @@ class _ParquetRows(_Rows):
         else:
             self.writer.close()
         return None
+
+
+def _arrow(rows):
+    """A pyarrow Table of ``rows`` (a Table already, or a DataFrame)."""
+    import pyarrow as pa
+    return rows if isinstance(rows, pa.Table) else pa.Table.from_pandas(rows, preserve_index=False)
+
+
+def _conform(t, schema):
+    """Table ``t`` with exactly ``schema``'s columns, in order and cast to its types (a column
+    ``t`` lacks becomes nulls)."""
+    import pyarrow as pa
+    have = set(t.column_names)
+    return pa.Table.from_arrays([t.column(f.name).cast(f.type) if f.name in have else
+                                 pa.nulls(t.num_rows, f.type) for f in schema], schema=schema)
 
 
 def _beats_schema():
@@ -451,6 +472,26 @@ def _beats_of(r: RecordResult, columns: list[str] | None = None) -> pd.DataFrame
     return b
 
 
+def _beats_arrow(r: RecordResult, schema):
+    """Record ``r``'s beat table as a pyarrow Table in ``schema``'s columns, less the last two
+    (patient and split, added by consolidation)."""
+    import pyarrow as pa
+    base = pa.schema(list(schema)[:-2])
+    t = None
+    if r.beats is None and r.store is not None:
+        t = r.store.arrow("beats")
+    elif r.beats is not None and len(r.beats.columns):
+        t = pa.Table.from_pandas(r.beats, preserve_index=False)
+    return base.empty_table() if t is None else _conform(t, base)
+
+
+def _windows_arrow(r: RecordResult):
+    """Record ``r``'s window table as a pyarrow Table (None when it has none)."""
+    if r.windows is None and r.store is not None:
+        return r.store.arrow("windows")
+    return None if r.windows is None else _arrow(r.windows)
+
+
 def _columns_of(r: RecordResult, columns: list[str]) -> dict[str, np.ndarray]:
     """A few beat-table columns as arrays: from memory, or read from the shard without pandas
     (consolidation reads them several times, so this read must be cheap)."""
@@ -460,6 +501,24 @@ def _columns_of(r: RecordResult, columns: list[str]) -> dict[str, np.ndarray]:
             return got
     b = _beats_of(r, columns)
     return {c: b[c].to_numpy() for c in columns}
+
+
+def _kept_classes(r: RecordResult) -> dict:
+    """Kept beats per class (unlabeled under None): from the shard's summary when it has one,
+    else from the beat table."""
+    kept = r.store.kept if r.beats is None and r.store is not None else None
+    if kept is not None:
+        return {k: int(v) for k, v in kept["classes"]}
+    b = _columns_of(r, ["included", "class"])
+    inc = np.asarray(b["included"], bool)
+    vc = pd.Series(np.asarray(b["class"], dtype=object)[inc]).value_counts(dropna=False)
+    return {(None if pd.isna(k) else str(k)): int(v) for k, v in vc.items()}
+
+
+def _rules_apply(split: str, fixed: bool, train_classes: set) -> bool:
+    """Whether the split settings may exclude some of a record's kept beats
+    (see :func:`_rule_reasons`)."""
+    return (fixed and not split) or (split == "train" and bool(train_classes))
 
 
 def _rule_reasons(b, split: str, fixed: bool, train_classes: set) -> np.ndarray:
@@ -491,7 +550,9 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     windows.parquet are streamed there. Records are visited one at a time in a few passes
     (class counts, normalization statistics, tensor, tables), and tables left in shards
     (``RecordResult.store``) are read only while their record is visited, so peak memory does
-    not grow with the number of records.
+    not grow with the number of records. Class counts and, where no split rule drops beats,
+    tensor placement come from each shard's kept-beat summary without a table read; the
+    tables pass works on pyarrow Tables (no DataFrame per record).
     """
     alloc = alloc or (lambda name, shape, dtype: np.zeros(shape, dtype))
     n_ax, n_s = len(axis), cfg.resample.n_samples
@@ -502,13 +563,7 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
 
     # ---- pass 1: kept beats per class, then patients and splits --------------------------
     patients = [patient_of(r.name, r.comments, pmap, cfg.split.patient_pattern) for r in results]
-    parts = []
-    for r, p in zip(results, patients):
-        b = _columns_of(r, ["included", "class"])
-        inc = np.asarray(b["included"], bool)
-        vc = pd.Series(np.asarray(b["class"], dtype=object)[inc]).value_counts(dropna=False)
-        parts.append(_Part(p, "", inc.size, {(None if pd.isna(k) else str(k)): int(v)
-                                            for k, v in vc.items()}))
+    parts = [_Part(p, "", r.n_beats, _kept_classes(r)) for r, p in zip(results, patients)]
     sp = cfg.split
     fixed = bool(sp.train_patients or sp.val_patients or sp.test_patients)
     if fixed:
@@ -551,6 +606,9 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
 
     def local_rows(k: int) -> np.ndarray:
         """Shard tensor rows of record k's final beats, in tensor order."""
+        kept = results[k].store.kept if results[k].store is not None else None
+        if kept and kept["in_order"] and not _rules_apply(parts[k].split, fixed, train_classes):
+            return np.arange(results[k].tensor.shape[0])  # no table read needed
         b = _columns_of(results[k], ["included", "class", "r_sample", "tensor_index"])
         rows = _final_rows(b, _rule_reasons(b, parts[k].split, fixed, train_classes))
         return np.asarray(b["tensor_index"])[rows]
@@ -558,39 +616,51 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     tensor, mask, center, scale, norm_note = _gather_normalized(
         results, [(k, parts[k].split) for k in order], local_rows, n_total, cfg, n_ax, n_s, alloc)
 
-    # ---- pass 4: tables, record by record in input order -------------------------------
-    sink_b = _ParquetRows(tables_to / "beats.parquet", _beats_schema()) if tables_to else _Rows()
+    # ---- pass 4: tables, record by record in input order (pyarrow, no DataFrame) ---------
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    schema_b = _beats_schema()
+    sink_b = _ParquetRows(tables_to / "beats.parquet", schema_b) if tables_to else _Rows()
     sink_w = _ParquetRows(tables_to / "windows.parquet") if tables_to else _Rows()
     reason_counts: dict[str, int] = {}
     split_classes = {s: {} for s in SPLITS}
     n_beats_all = 0
     for k, (r, part) in enumerate(zip(results, parts)):
-        b = _beats_of(r).copy(deep=False)  # copy-on-write: the record's own table is not changed
-        b["patient"] = part.patient
-        b["split"] = part.split
-        more = _rule_reasons(b, part.split, fixed, train_classes)
+        t = _beats_arrow(r, schema_b)
+        n = t.num_rows
+        cols = {c: t.column(c).to_numpy(zero_copy_only=False)
+                for c in ("included", "class", "r_sample")}
+        more = _rule_reasons(cols, part.split, fixed, train_classes)
         hit = more != ""
-        if hit.any():
-            b.loc[hit, "reasons"] = [reasons_mod.join([c]) for c in more[hit]]
-            b.loc[hit, "flags"] = ""
-            b.loc[hit, "included"] = False
-        rows = _final_rows(b, more)
-        ti = np.full(len(b), -1, np.int64)
+        if hit.any():  # the split settings exclude some kept beats: say why in their rows
+            reasons = t.column("reasons").to_numpy(zero_copy_only=False).astype(object)
+            flags = t.column("flags").to_numpy(zero_copy_only=False).astype(object)
+            reasons[hit] = [reasons_mod.join([c]) for c in more[hit]]
+            flags[hit] = ""
+            inc = cols["included"].astype(bool)
+            inc[hit] = False
+            for name, v, typ in (("reasons", reasons, pa.string()), ("flags", flags, pa.string()),
+                                 ("included", inc, pa.bool_())):
+                t = t.set_column(t.schema.get_field_index(name), name, pa.array(v, typ))
+        rows = _final_rows(cols, more)
+        ti = np.full(n, -1, np.int64)
         ti[rows] = part.offset + np.arange(rows.size)
-        b["tensor_index"] = ti
-        for cell, v in b["reasons"].value_counts().items():  # a few distinct cells per record
-            for c in filter(None, str(cell).split(";")):
-                reason_counts[c] = reason_counts.get(c, 0) + int(v)
+        t = t.set_column(t.schema.get_field_index("tensor_index"), "tensor_index", pa.array(ti))
+        for d in pc.value_counts(t.column("reasons")).to_pylist():  # a few distinct cells
+            for c in filter(None, (d["values"] or "").split(";")):
+                reason_counts[c] = reason_counts.get(c, 0) + int(d["counts"])
         if part.split in split_classes and rows.size:
             sc = split_classes[part.split]
-            for cls, v in b["class"].iloc[rows].value_counts().items():
-                sc[str(cls)] = sc.get(str(cls), 0) + int(v)
-        n_beats_all += len(b)
-        sink_b.add(b[[c for c in BEAT_COLUMNS if c in b] + ["patient", "split"]])
-        w = r.table("windows")
+            for d in pc.value_counts(t.column("class").take(pa.array(rows))).to_pylist():
+                if d["values"] is not None:
+                    sc[str(d["values"])] = sc.get(str(d["values"]), 0) + int(d["counts"])
+        n_beats_all += n
+        t = t.append_column("patient", pa.array([part.patient] * n, pa.string()))
+        sink_b.add(t.append_column("split", pa.array([part.split] * n, pa.string())))
+        w = _windows_arrow(r)
         if w is not None:
             sink_w.add(w)
-        del b, w
+        del t, w
     empty_b = _empty_beats()
     empty_b["patient"], empty_b["split"] = pd.Series(dtype="str"), pd.Series(dtype="str")
     beats = sink_b.finish(empty_b)

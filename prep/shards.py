@@ -61,7 +61,7 @@ def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) ->
     meta = {"name": res.name, "status": res.status, "error": res.error, "fs": res.fs,
             "duration_s": res.duration_s, "n_leads": res.n_leads, "inputs": res.inputs,
             "comments": res.comments, "warnings": res.warnings, "leads": res.leads,
-            "logs": [lg.to_dict() for lg in res.logs]}
+            "logs": [lg.to_dict() for lg in res.logs], "kept": kept_summary(res.beats)}
     tensor = res.tensor if res.tensor is not None else np.zeros((0, 0, 0), np.float32)
     hashes = {"tensor.npy": _write_npy_hashed(fs, f"{d}/tensor.npy", tensor.astype(np.float32,
                                                                                      copy=False))}
@@ -80,6 +80,22 @@ def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) ->
               "files": hashes}
     with fs.open(f"{d}/{COMMIT}", "wb") as fh:
         fh.write(json.dumps(commit, sort_keys=True).encode())
+
+
+def kept_summary(beats: pd.DataFrame | None) -> dict:
+    """What consolidation's first passes need of a record's beat table, so that they need not
+    read it: kept beats per class (``null`` for unlabeled) and whether the kept beats' tensor
+    rows are simply 0, 1, 2... in time order (then a record no split rule touches needs no
+    table read to place its beats)."""
+    if beats is None or not len(beats.columns):
+        return {"classes": [], "in_order": True}
+    inc = beats["included"].to_numpy(bool)
+    vc = beats.loc[inc, "class"].value_counts(dropna=False)
+    ti = beats["tensor_index"].to_numpy()[inc]
+    rs = beats["r_sample"].to_numpy()[inc]
+    in_order = bool(np.array_equal(ti, np.arange(ti.size)) and np.all(np.diff(rs) >= 0))
+    return {"classes": [[None if pd.isna(k) else str(k), int(v)] for k, v in vc.items()],
+            "in_order": in_order}
 
 
 class _HashingWriter:
@@ -121,8 +137,9 @@ class ShardTables:
     checked against the commit marker again.
     """
 
-    def __init__(self, fs, folder: str, hashes: dict, n_rows: dict):
+    def __init__(self, fs, folder: str, hashes: dict, n_rows: dict, kept: dict | None = None):
         self.fs, self.folder, self.hashes, self.n_rows = fs, folder, hashes, n_rows
+        self.kept = kept  # kept_summary() of the beat table (None in shards written before it)
 
     def _bytes(self, table: str) -> bytes:
         name = f"{table}.parquet"
@@ -140,13 +157,19 @@ class ShardTables:
             return None
         return pd.read_parquet(io.BytesIO(data), columns=columns)
 
-    def arrays(self, table: str, columns: list[str]) -> dict[str, np.ndarray] | None:
-        """Some columns as numpy arrays, read by pyarrow without building a DataFrame."""
+    def arrow(self, table: str, columns: list[str] | None = None):
+        """The table (or some columns) as a pyarrow Table, without building a DataFrame."""
         import pyarrow.parquet as pq
         data = self._bytes(table)
         if self.n_rows.get(table) is None:
             return None
-        t = pq.read_table(io.BytesIO(data), columns=columns)
+        return pq.read_table(io.BytesIO(data), columns=columns)
+
+    def arrays(self, table: str, columns: list[str]) -> dict[str, np.ndarray] | None:
+        """Some columns as numpy arrays, read by pyarrow without building a DataFrame."""
+        t = self.arrow(table, columns)
+        if t is None:
+            return None
         return {c: t.column(c).to_numpy() for c in columns}
 
 
@@ -209,7 +232,8 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
             f = pq.ParquetFile(io.BytesIO(blobs[name]))
             return f.metadata.num_rows if f.schema_arrow.names else None
         res.store = ShardTables(fs, d, commit["files"], {"beats": rows("beats.parquet"),
-                                                         "windows": rows("windows.parquet")})
+                                                         "windows": rows("windows.parquet")},
+                                meta.get("kept"))
     if res.status == "failed":
         res.tensor = res.mask = res.beats = None
         res.store = None

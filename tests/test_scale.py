@@ -193,6 +193,42 @@ def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
     ds = open_dataset(out)
     pd.testing.assert_frame_equal(a.table.reset_index(drop=True), ds.table, check_dtype=False)
     assert (a.beats == ds.beats).all()
+    # The shards' kept-beat summaries (which spare the first passes a table read) agree with
+    # the tables, also where split rules drop beats (train_classes; a patient in no fixed list)
+    # and for a shard written before summaries existed (kept=None: the tables are read).
+    assert all(r.store.kept["in_order"] for r in lazy)
+    for c in (cfg.replace(labels={"train_classes": ["N"]}, normalize={"scope": "dataset"}),
+              cfg.replace(split={"train_patients": ["night01"], "test_patients": ["night02"]})):
+        want = assemble(full, c, *args[1:])
+        for kept in ("summary", None):
+            for r in lazy:
+                r.store.kept = r.store.kept if kept else None
+            got = assemble(lazy, c, *args[1:])
+            pd.testing.assert_frame_equal(got.table, want.table)
+            assert (got.beats == want.beats).all() and got.manifest == want.manifest
+        assert (want.table.reasons.str.contains("not_").any())  # the rules did drop beats
+
+
+def test_kept_summary_and_rule_shortcut_agree_with_the_rules():
+    import numpy as np
+    import pandas as pd
+
+    from prep.dataset import _rule_reasons, _rules_apply
+    from prep.shards import kept_summary
+    b = pd.DataFrame({"included": [True, False, True, True], "class": ["N", "V", None, "V"],
+                      "r_sample": [10, 20, 30, 40], "tensor_index": [0, -1, 1, 2]})
+    got = kept_summary(b)
+    assert got["in_order"] and dict(map(tuple, got["classes"])) == {"N": 1, None: 1, "V": 1}
+    assert not kept_summary(b.assign(tensor_index=[1, -1, 0, 2]))["in_order"]
+    assert not kept_summary(b.assign(r_sample=[10, 20, 50, 40]))["in_order"]
+    assert kept_summary(None) == {"classes": [], "in_order": True}
+    for split in ("", "train", "val", "test"):
+        for fixed in (False, True):
+            for tc in (set(), {"N"}):
+                extra = _rule_reasons(b, split, fixed, tc)
+                if not _rules_apply(split, fixed, tc):  # the shortcut skips no exclusion
+                    assert (extra == "").all()
+                assert np.isin(extra, ["", "not_in_split_lists", "not_train_class"]).all()
 
 
 @pytest.mark.refdata
