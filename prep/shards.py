@@ -1,8 +1,10 @@
 """Per-record shards: a record's results written as soon as it is processed, trusted only once
 its commit marker exists.
 
-A shard is a folder holding ``tensor.npy``, ``mask.npy``, ``beats.parquet``, ``leads.parquet``,
-``windows.parquet`` and ``meta.json``, then ``COMMIT.json``, written last, holding the config hash,
+A shard is a folder holding ``tensor.npy``, ``mask.npy``, ``beats.arrow``, ``leads.arrow``,
+``windows.arrow`` (Arrow IPC files, uncompressed: written and read several times faster than
+Parquet, and a shard is scratch space) and ``meta.json``, then ``COMMIT.json``, written last,
+holding the config hash,
 the SHA-256 of every input file and of every shard file. A shard without a commit marker, or
 whose files do not match it, is never trusted, so a run killed at any moment (or an object store
 without atomic rename) leaves nothing a later run would wrongly reuse. Shard roots may be local
@@ -22,7 +24,7 @@ from .model import StageLog
 from .pipeline import RecordResult
 
 COMMIT = "COMMIT.json"
-_FILES = ("tensor.npy", "mask.npy", "beats.parquet", "leads.parquet", "windows.parquet",
+_FILES = ("tensor.npy", "mask.npy", "beats.arrow", "leads.arrow", "windows.arrow",
           "meta.json")
 
 
@@ -43,12 +45,20 @@ def _npy(arr) -> bytes:
     return b.getvalue()
 
 
-def _parquet(df: pd.DataFrame) -> bytes:
+def _ipc(df: pd.DataFrame) -> bytes:
+    """A DataFrame as an Arrow IPC file (one thread: a worker process uses one core)."""
     import pyarrow as pa
-    import pyarrow.parquet as pq
-    b = io.BytesIO()
-    pq.write_table(pa.Table.from_pandas(df, preserve_index=False), b, compression="zstd")
-    return b.getvalue()
+    t = pa.Table.from_pandas(df, preserve_index=False, nthreads=1)
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_file(sink, t.schema) as w:
+        w.write_table(t)
+    return sink.getvalue().to_pybytes()
+
+
+def _read_ipc(data: bytes, columns: list[str] | None = None):
+    import pyarrow as pa
+    t = pa.ipc.open_file(pa.BufferReader(data)).read_all()
+    return t if columns is None else t.select(columns)
 
 
 def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) -> None:
@@ -67,9 +77,9 @@ def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) ->
                                                                                      copy=False))}
     blobs = {
         "mask.npy": _npy(res.mask if res.mask is not None else np.zeros((0, 0), bool)),
-        "beats.parquet": _parquet(res.beats if res.beats is not None else pd.DataFrame()),
-        "leads.parquet": _parquet(pd.DataFrame(res.leads)),
-        "windows.parquet": _parquet(res.windows if res.windows is not None else pd.DataFrame()),
+        "beats.arrow": _ipc(res.beats if res.beats is not None else pd.DataFrame()),
+        "leads.arrow": _ipc(pd.DataFrame(res.leads)),
+        "windows.arrow": _ipc(res.windows if res.windows is not None else pd.DataFrame()),
         "meta.json": json.dumps(meta, default=_plain, sort_keys=True).encode(),
     }
     for name, data in blobs.items():
@@ -142,7 +152,7 @@ class ShardTables:
         self.kept = kept  # kept_summary() of the beat table (None in shards written before it)
 
     def _bytes(self, table: str) -> bytes:
-        name = f"{table}.parquet"
+        name = f"{table}.arrow"
         with self.fs.open(f"{self.folder}/{name}", "rb") as fh:
             data = fh.read()
         if hashlib.sha256(data).hexdigest() != self.hashes.get(name):
@@ -155,15 +165,14 @@ class ShardTables:
         data = self._bytes(table)
         if self.n_rows.get(table) is None:
             return None
-        return pd.read_parquet(io.BytesIO(data), columns=columns)
+        return _read_ipc(data, columns).to_pandas()
 
     def arrow(self, table: str, columns: list[str] | None = None):
         """The table (or some columns) as a pyarrow Table, without building a DataFrame."""
-        import pyarrow.parquet as pq
         data = self._bytes(table)
         if self.n_rows.get(table) is None:
             return None
-        return pq.read_table(io.BytesIO(data), columns=columns)
+        return _read_ipc(data, columns)
 
     def arrays(self, table: str, columns: list[str]) -> dict[str, np.ndarray] | None:
         """Some columns as numpy arrays, read by pyarrow without building a DataFrame."""
@@ -221,18 +230,16 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
         res.tensor = np.load(io.BytesIO(blobs["tensor.npy"]))
         res.mask = np.load(io.BytesIO(blobs["mask.npy"]))
     if tables:
-        b = pd.read_parquet(io.BytesIO(blobs["beats.parquet"]))
+        b = _read_ipc(blobs["beats.arrow"]).to_pandas()
         res.beats = b if len(b.columns) else None
-        w = pd.read_parquet(io.BytesIO(blobs["windows.parquet"]))
+        w = _read_ipc(blobs["windows.arrow"]).to_pandas()
         res.windows = w if len(w.columns) else None
     else:
-        import pyarrow.parquet as pq
-
-        def rows(name):  # row count from the footer; None for a table with no columns
-            f = pq.ParquetFile(io.BytesIO(blobs[name]))
-            return f.metadata.num_rows if f.schema_arrow.names else None
-        res.store = ShardTables(fs, d, commit["files"], {"beats": rows("beats.parquet"),
-                                                         "windows": rows("windows.parquet")},
+        def rows(name):  # row count; None for a table with no columns
+            t = _read_ipc(blobs[name])
+            return t.num_rows if t.column_names else None
+        res.store = ShardTables(fs, d, commit["files"], {"beats": rows("beats.arrow"),
+                                                         "windows": rows("windows.arrow")},
                                 meta.get("kept"))
     if res.status == "failed":
         res.tensor = res.mask = res.beats = None

@@ -43,7 +43,7 @@ def test_resume_reuses_only_unchanged_committed_shards(tmp_path, monkeypatch):
     assert calls == ["night03"]
     # a shard whose files were tampered with is not trusted
     shard = next((out / ".shards").glob("night01-*"))
-    (shard / "beats.parquet").write_bytes(b"junk")
+    (shard / "beats.arrow").write_bytes(b"junk")
     run([src], out)
     assert calls == ["night03", "night01"]
     assert check_dataset(out) == []
