@@ -727,10 +727,13 @@ def write_assembled(out: Path, a: Assembled) -> None:
     """Write an assembled dataset; the manifest, holding every file's SHA-256, comes last.
     Tensors and tables already streamed into ``out`` (see :func:`assemble`) are closed, not
     copied."""
+    known = {}  # SHA-256 of tensors hashed while they were written
     for name, arr in (("beats.npy", a.beats), ("lead_mask.npy", a.lead_mask),
                       ("norm_center.npy", a.norm_center), ("norm_scale.npy", a.norm_scale)):
         if isinstance(arr, NpyWriter) and arr.path.resolve() == (out / name).resolve():
             arr.close()
+            if arr.sha256:
+                known[name] = arr.sha256
         else:
             write_npy(out / name, arr)
     for name, df in (("beats.parquet", a.table), ("leads.parquet", a.leads),
@@ -740,7 +743,8 @@ def write_assembled(out: Path, a: Assembled) -> None:
         elif not (out / name).exists():
             raise FileNotFoundError(f"{out / name}: the streamed table was not written")
     manifest = {**a.manifest,
-                "files": {f: sha256_file(out / f) for f in TENSOR_FILES + TABLE_FILES}}
+                "files": {f: known.get(f) or sha256_file(out / f)
+                          for f in TENSOR_FILES + TABLE_FILES}}
     write_manifest(out / MANIFEST, manifest)
 
 

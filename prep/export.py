@@ -1,6 +1,8 @@
 """Writing a dataset folder: tensors, tables and the manifest, each file written atomically."""
 from __future__ import annotations
 
+import hashlib
+import io
 import json
 import os
 import platform
@@ -90,23 +92,41 @@ def environment() -> dict[str, str]:
 
 class NpyWriter:
     """A .npy file written slice by slice with plain writes (no memory map), so the memory a
-    consolidation needs does not grow with the dataset. Supports ``w[a:b] = rows`` only."""
+    consolidation needs does not grow with the dataset. Supports ``w[a:b] = rows`` only.
+    When the slices come in order, the file's SHA-256 is computed on the way (``sha256``), so
+    the manifest need not read the file back."""
 
     def __init__(self, path: Path, shape: tuple, dtype):
         self.path, self.shape, self.dtype = Path(path), tuple(shape), np.dtype(dtype)
         self.row = int(np.prod(self.shape[1:])) * self.dtype.itemsize
-        self._fh = open(self.path, "wb")
+        head = io.BytesIO()
         np.lib.format.write_array_header_1_0(
-            self._fh, {"descr": np.lib.format.dtype_to_descr(self.dtype), "fortran_order": False,
-                       "shape": self.shape})
+            head, {"descr": np.lib.format.dtype_to_descr(self.dtype), "fortran_order": False,
+                   "shape": self.shape})
+        self._fh = open(self.path, "wb")
+        self._fh.write(head.getvalue())
+        self._hash, self._next = hashlib.sha256(head.getvalue()), 0
         self.offset = self._fh.tell()
         self._fh.truncate(self.offset + self.row * self.shape[0])
 
     def __setitem__(self, key: slice, value) -> None:
         start = key.start or 0
-        data = np.ascontiguousarray(value, dtype=self.dtype)
+        data = np.ascontiguousarray(value, dtype=self.dtype).reshape(-1).view(np.uint8)
+        if self._hash is not None:
+            if start == self._next:
+                self._hash.update(data)
+                self._next += len(data) // max(1, self.row)
+            else:  # out of order: the file is hashed when it is closed instead
+                self._hash = None
         self._fh.seek(self.offset + start * self.row)
-        self._fh.write(data.tobytes())
+        self._fh.write(data)
+
+    @property
+    def sha256(self) -> str | None:
+        """The file's SHA-256 when every row was written once, in order (else None)."""
+        if self._hash is None or self._next != self.shape[0]:
+            return None
+        return self._hash.hexdigest()
 
     def close(self) -> None:
         if not self._fh.closed:

@@ -266,3 +266,29 @@ def test_edf_record_in_chunks_agrees_with_one_piece(tmp_path):
     assert (wa.loc[same, "label"] == wb.loc[same, "label"]).all()  # annotations shifted right
     assert (wb["label"] != "").mean() >= 0.99
     assert (wa.loc[same, "included"] == wb.loc[same, "included"]).mean() >= 0.995
+
+
+def test_npy_writer_hashes_in_order_writes_and_matches_numpy(tmp_path):
+    # The written file loads with numpy.load (the reference reader of the .npy format) as the
+    # array written; its SHA-256 (hashlib over the file) is known without a read-back only
+    # when every row came once, in order.
+    import hashlib
+
+    import numpy as np
+
+    from prep.export import NpyWriter
+    x = np.random.default_rng(0).normal(size=(10, 2, 5)).astype(np.float32)
+    w = NpyWriter(tmp_path / "a.npy", x.shape, np.float32)
+    for i in range(0, 10, 3):
+        w[i:i + 3] = x[i:i + 3]
+    w.close()
+    assert np.array_equal(np.load(tmp_path / "a.npy"), x)
+    assert w.sha256 == hashlib.sha256((tmp_path / "a.npy").read_bytes()).hexdigest()
+    m = NpyWriter(tmp_path / "m.npy", (4, 3), np.bool_)
+    m[2:4], m[0:2] = np.ones((2, 3), bool), np.zeros((2, 3), bool)  # out of order
+    m.close()
+    assert m.sha256 is None and np.load(tmp_path / "m.npy")[2:].all()
+    p = NpyWriter(tmp_path / "p.npy", (4, 3), np.float32)
+    p[0:2] = np.ones((2, 3))  # rows 2-3 never written
+    p.close()
+    assert p.sha256 is None
