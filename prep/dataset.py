@@ -6,6 +6,7 @@ import json
 import logging
 import os
 import shutil
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -714,13 +715,33 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
                    "beats": int(n_beats_all), "beats_kept": int(tensor.shape[0]),
                    "beats_excluded": int(n_beats_all - tensor.shape[0]),
                    "excluded_by_reason": dict(sorted(reason_counts.items()))},
-        "records": {r.name: {"status": r.status, "error": r.error, "warnings": r.warnings,
-                             "stages": [lg.to_dict() for lg in r.logs]} for r in results},
+        "records": (_RecordsSection(results) if any(r.store is not None for r in results)
+                    else dict(_RecordsSection(results))),  # in-memory results: a plain dict
     }
     usable = len(results) - n_failed - n_nolead
     code = (EXIT_NONE_USABLE if usable == 0 else EXIT_SOME_FAILED if usable < len(results)
             else EXIT_OK)
     return Assembled(tensor, mask, center, scale, beats, leads, records, windows, manifest, code)
+
+
+class _RecordsSection(Mapping):
+    """The manifest's per-record section, built one record at a time when it is read or
+    written: stage logs left in shards are read then, so consolidation holds none of them."""
+
+    def __init__(self, results: list[RecordResult]):
+        self._by = {r.name: r for r in results}
+
+    def __getitem__(self, name: str) -> dict:
+        r = self._by[name]
+        stages = ([lg.to_dict() for lg in r.logs] if r.logs or r.store is None
+                  else r.store.stages())
+        return {"status": r.status, "error": r.error, "warnings": r.warnings, "stages": stages}
+
+    def __iter__(self):
+        return iter(self._by)
+
+    def __len__(self) -> int:
+        return len(self._by)
 
 
 def write_assembled(out: Path, a: Assembled) -> None:

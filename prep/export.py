@@ -72,10 +72,38 @@ def _clean(o: Any):
     return o
 
 
+def _json_text(value: Any, depth: int) -> str:
+    """``value`` as indented JSON, as it reads at nesting ``depth`` of a larger document."""
+    text = json.dumps(_clean(json.loads(json.dumps(value, default=_jsonable))), indent=2,
+                      ensure_ascii=False)
+    return text.replace("\n", "\n" + "  " * depth)
+
+
 def write_manifest(path: Path, manifest: dict) -> None:
-    text = json.dumps(_clean(json.loads(json.dumps(manifest, default=_jsonable))), indent=2,
-                      sort_keys=False, ensure_ascii=False)
-    _atomic(path, lambda p: p.write_text(text + "\n", encoding="utf-8"))
+    """Write the manifest as indented JSON. A top-level value that is a Mapping but not a dict
+    (the per-record section of a large run) is written one entry at a time, so the whole
+    document is never held in memory; the text is the same as ``json.dumps(..., indent=2)``
+    of the equivalent dict."""
+    from collections.abc import Mapping
+
+    def key(k) -> str:
+        return json.dumps(str(k), ensure_ascii=False)
+
+    def write(p: Path) -> None:
+        with open(p, "w", encoding="utf-8") as fh:
+            fh.write("{")
+            for i, (k, v) in enumerate(manifest.items()):
+                fh.write(("," if i else "") + "\n  " + key(k) + ": ")
+                if isinstance(v, Mapping) and not isinstance(v, dict) and len(v):
+                    fh.write("{")
+                    for j, (k2, v2) in enumerate(v.items()):
+                        fh.write(("," if j else "") + "\n    " + key(k2) + ": " +
+                                 _json_text(v2, 2))
+                    fh.write("\n  }")
+                else:
+                    fh.write(_json_text(dict(v) if isinstance(v, Mapping) else v, 1))
+            fh.write("\n}\n" if manifest else "}\n")
+    _atomic(path, write)
 
 
 def environment() -> dict[str, str]:

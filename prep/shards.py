@@ -140,7 +140,7 @@ def _plain(o):
 
 
 class ShardTables:
-    """A committed shard's beat and window tables, read only when asked for.
+    """A committed shard's beat and window tables and stage logs, read only when asked for.
 
     Consolidation reads each table a few times, a record at a time, instead of holding every
     record's tables at once: memory then does not grow with the number of records. Each read is
@@ -159,6 +159,15 @@ class ShardTables:
             raise OSError(f"shard {self.folder}: {name} changed after it was committed; run the "
                           "same command again to redo this record")
         return data
+
+    def stages(self) -> list[dict]:
+        """The record's stage logs (as dicts), read from its meta.json and checked again."""
+        with self.fs.open(f"{self.folder}/meta.json", "rb") as fh:
+            data = fh.read()
+        if hashlib.sha256(data).hexdigest() != self.hashes.get("meta.json"):
+            raise OSError(f"shard {self.folder}: meta.json changed after it was committed; run "
+                          "the same command again to redo this record")
+        return [StageLog(**lg).to_dict() for lg in json.loads(data)["logs"]]
 
     def load(self, table: str, columns: list[str] | None = None) -> pd.DataFrame | None:
         """``table`` is 'beats' or 'windows'; None when the record wrote no such table."""
@@ -187,8 +196,9 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
     """The record's committed shard, or None when absent, uncommitted, stale or corrupt.
 
     ``inputs`` (file, SHA-256) pairs must match the commit (None skips that check).
-    ``tables=False`` leaves the beat and window tables on storage: ``res.beats`` and
-    ``res.windows`` are None and ``res.store`` (a :class:`ShardTables`) reads them on demand.
+    ``tables=False`` leaves the beat and window tables and the stage logs on storage:
+    ``res.beats`` and ``res.windows`` are None, ``res.logs`` is empty, and ``res.store`` (a
+    :class:`ShardTables`) reads them on demand.
     """
     fs, base = _fs(root)
     d = f"{base.rstrip('/')}/{shard_name(record)}"
@@ -222,7 +232,8 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
     res = RecordResult(meta["name"], meta["status"], meta["error"], meta["fs"], meta["duration_s"],
                        meta["n_leads"], [tuple(x) for x in meta["inputs"]],
                        comments=meta["comments"], warnings=meta["warnings"], leads=meta["leads"])
-    res.logs = [StageLog(**lg) for lg in meta["logs"]]
+    if tables or res.status == "failed":  # else the stage logs stay on storage (store.stages)
+        res.logs = [StageLog(**lg) for lg in meta["logs"]]
     if local:
         res.tensor = np.load(f"{d}/tensor.npy", mmap_mode="r")
         res.mask = np.load(f"{d}/mask.npy", mmap_mode="r")

@@ -292,3 +292,37 @@ def test_npy_writer_hashes_in_order_writes_and_matches_numpy(tmp_path):
     p[0:2] = np.ones((2, 3))  # rows 2-3 never written
     p.close()
     assert p.sha256 is None
+
+
+def test_streamed_manifest_section_writes_the_same_text_as_json_dumps(tmp_path):
+    # A per-record section given as a lazy Mapping is written entry by entry; the file must be
+    # the text json.dumps(indent=2) gives for the equivalent dict (Python's json module is the
+    # reference), NaN written as null as elsewhere in the manifest.
+    from collections.abc import Mapping
+
+    from prep.export import write_manifest
+
+    class Lazy(Mapping):
+        def __init__(self, d):
+            self.d = d
+
+        def __getitem__(self, k):
+            return self.d[k]
+
+        def __iter__(self):
+            return iter(self.d)
+
+        def __len__(self):
+            return len(self.d)
+
+    recs = {"night01": {"status": "ok", "stages": [{"stage": "gaps", "counts": {"n": 1}}]},
+            "nacht-\u00e9": {"status": "failed", "error": "line\nbreak", "x": float("nan")}}
+    plain = {"tool": {"name": "beatmill"}, "records": recs, "empty": {}, "files": {"a": "b"}}
+    lazy = {**plain, "records": Lazy(recs), "empty": Lazy({})}
+    write_manifest(tmp_path / "plain.json", plain)
+    write_manifest(tmp_path / "lazy.json", lazy)
+    want = json.dumps({**plain, "records": {**recs, "nacht-\u00e9": {**recs["nacht-\u00e9"],
+                                                                      "x": None}}},
+                      indent=2, ensure_ascii=False) + "\n"
+    assert (tmp_path / "plain.json").read_text(encoding="utf-8") == want
+    assert (tmp_path / "lazy.json").read_text(encoding="utf-8") == want
