@@ -139,6 +139,30 @@ def _plain(o):
     raise TypeError(type(o).__name__)
 
 
+class OnDisk:
+    """A shard's .npy array left on disk: its shape and dtype are known, and rows are read
+    through a memory map made for that read only. (A map held per record would cost one
+    kernel mapping each: tens of thousands of records would reach the system's limit.)"""
+
+    def __init__(self, path: str):
+        self.filename = path
+        with open(path, "rb") as fh:
+            version = np.lib.format.read_magic(fh)
+            read = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                    else np.lib.format.read_array_header_2_0)
+            self.shape, _, self.dtype = read(fh)
+        self.ndim = len(self.shape)
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def __getitem__(self, index) -> np.ndarray:
+        m = np.load(self.filename, mmap_mode="r")
+        out = np.array(m[index])
+        del m
+        return out
+
+
 class ShardTables:
     """A committed shard's beat and window tables and stage logs, read only when asked for.
 
@@ -234,7 +258,9 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
                        comments=meta["comments"], warnings=meta["warnings"], leads=meta["leads"])
     if tables or res.status == "failed":  # else the stage logs stay on storage (store.stages)
         res.logs = [StageLog(**lg) for lg in meta["logs"]]
-    if local:
+    if local and not tables:  # left on disk: no mapping held per record
+        res.tensor, res.mask = OnDisk(f"{d}/tensor.npy"), OnDisk(f"{d}/mask.npy")
+    elif local:
         res.tensor = np.load(f"{d}/tensor.npy", mmap_mode="r")
         res.mask = np.load(f"{d}/mask.npy", mmap_mode="r")
     else:

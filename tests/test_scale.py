@@ -326,3 +326,23 @@ def test_streamed_manifest_section_writes_the_same_text_as_json_dumps(tmp_path):
                       indent=2, ensure_ascii=False) + "\n"
     assert (tmp_path / "plain.json").read_text(encoding="utf-8") == want
     assert (tmp_path / "lazy.json").read_text(encoding="utf-8") == want
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/maps"), reason="needs Linux /proc")
+def test_lazy_shards_hold_no_memory_map(demo_run):
+    # Each record read for consolidation keeps its tensor on disk: no kernel mapping of any
+    # shard file stays open (Linux lists them in /proc/self/maps), and rows read through it
+    # equal numpy.load's.
+    import numpy as np
+
+    from prep.shards import read_shard, shard_name
+    out, _ = demo_run
+    root = out / ".shards"
+    commits = [json.loads(p.read_text()) for p in root.glob("*/COMMIT.json")]
+    got = [read_shard(str(root), c["record"], c["config_sha256"], None, tables=False)
+           for c in commits]
+    assert str(root) not in open("/proc/self/maps").read()
+    for r, c in zip(got, commits):
+        ref = np.load(root / shard_name(c["record"]) / "tensor.npy")
+        assert r.tensor.shape == ref.shape and np.array_equal(r.tensor[[0, 2]], ref[[0, 2]])
+    assert str(root) not in open("/proc/self/maps").read()
