@@ -11,10 +11,9 @@ child process doing only that step. Throughput is the best of ``--repeat`` runs 
 workers taken in turn), as the speed benchmark does: on a shared 2-core machine single runs vary
 by 20 % or more.
 
-Three speed-up figures are printed: the whole run on 20 and on 40 records (every fixed cost
-included: the worker processes' start and their import of neurokit2, reading headers, the
-manifest); the marginal one, (T1(40) - T1(20)) / (T2(40) - T2(20)), which is what each further
-record gains and what a database-sized run approaches; and a peer measured in the same run:
+Speed-ups are printed for the whole run on 20 and on 40 records (every fixed cost included: the
+worker processes' start and their import of neurokit2, reading headers, consolidation, the
+manifest), and for a peer measured in the same run:
 neurokit2's own R-peak pipeline (ecg_clean then ecg_peaks on a 30-minute lead), the same work
 done by one process and split over two, timed from a common start after every process has
 imported and warmed up. The peer has no fixed cost and no coordination, so it shows what two
@@ -117,11 +116,6 @@ def _throughput(sizes: list[tuple[int, Path]], work: Path, repeat: int, ref: Pat
         print(f"  1 worker : {one:7.1f} s  ({n / one:.2f} records/s)")
         print(f"  2 workers: {two:7.1f} s  ({n / two:.2f} records/s)")
         print(f"  speed-up : {one / two:.2f}x (goal >= 1.8x on 2 cores)")
-    if len(sizes) >= 2:
-        (n1, _), (n2, _) = sizes[0], sizes[-1]
-        d1, d2 = best[n2][0] - best[n1][0], best[n2][1] - best[n1][1]
-        print(f"Marginal speed-up, records {n1 + 1}-{n2} (best times differenced): "
-              f"1 worker {d1:.1f} s, 2 workers {d2:.1f} s: {d1 / d2:.2f}x")
     one, two = best["peer"]
     print("Peer, neurokit2 ecg_clean + ecg_peaks, 80 runs on a 30-minute lead, best of "
           f"{len(times['peer'][0])}: 1 process {one:.1f} s, 2 processes {two:.1f} s: "
