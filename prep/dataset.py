@@ -365,9 +365,8 @@ class _Rows:
     kept in memory and returned as one DataFrame by default; :class:`_ParquetRows` streams them
     into a file instead."""
 
-    def __init__(self, schema=None):
+    def __init__(self):
         self.parts: list = []
-        self.schema = schema
 
     def add(self, rows) -> None:
         t = _arrow(rows)
@@ -387,8 +386,8 @@ class _ParquetRows(_Rows):
     later rows lack is written as nulls; one they add is left out)."""
 
     def __init__(self, path: Path, schema=None, group: int = 65536):
-        super().__init__(schema)
-        self.path, self.group = path, group
+        super().__init__()
+        self.path, self.schema, self.group = path, schema, group
         self.writer = None
         self.n = 0
 
@@ -482,7 +481,7 @@ def _beats_arrow(r: RecordResult, schema):
     if r.beats is None and r.store is not None:
         t = r.store.arrow("beats")
     elif r.beats is not None and len(r.beats.columns):
-        t = pa.Table.from_pandas(r.beats, preserve_index=False)
+        t = _arrow(r.beats)
     return base.empty_table() if t is None else _conform(t, base)
 
 
