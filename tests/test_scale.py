@@ -346,3 +346,20 @@ def test_lazy_shards_hold_no_memory_map(demo_run):
         ref = np.load(root / shard_name(c["record"]) / "tensor.npy")
         assert r.tensor.shape == ref.shape and np.array_equal(r.tensor[[0, 2]], ref[[0, 2]])
     assert str(root) not in open("/proc/self/maps").read()
+
+
+def test_parallel_runs_start_the_largest_records_first(tmp_path):
+    # Longest-processing-time-first is the classic list-scheduling rule (Graham, 1969, from
+    # memory): a long record taken last would leave the other workers idle. Input size stands
+    # in for processing time; equal sizes keep the input order.
+    from prep.dataset import _largest_first
+    from prep.read import Source
+    sizes = {"a": 10, "b": 300, "c": 10, "d": 50}
+    found, inputs = [], []
+    for name, n in sizes.items():
+        (tmp_path / f"{name}.dat").write_bytes(b"x" * n)
+        (tmp_path / f"{name}.hea").write_text("h")
+        found.append(Source("wfdb", tmp_path / name, name))
+        inputs.append([(f"{name}.hea", "-"), (f"{name}.dat", "-"), ("gone.atr", "-")])
+    assert _largest_first([0, 1, 2, 3], found, inputs) == [1, 3, 0, 2]
+    assert _largest_first([2, 0], found, inputs) == [2, 0]
