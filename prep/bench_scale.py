@@ -2,7 +2,7 @@
 records, and a 24-hour two-lead record.
 
     python -m prep.bench_scale [--ref ../shared/ref-ecg] [--work /tmp/beatmill-scale] [--skip-24h]
-                               [--repeat 3]
+                               [--repeat 5]
 
 Throughput is measured on 20 and on 40 records. Records are copies of the 30-minute, two-lead,
 360 Hz MIT-BIH records 100, 105 and 119 (made in the work folder, never in the repository); the
@@ -128,7 +128,7 @@ def main(argv=None) -> None:
                                          "ref-ecg"))
     ap.add_argument("--work", default="/tmp/beatmill-scale")
     ap.add_argument("--skip-24h", action="store_true")
-    ap.add_argument("--repeat", type=int, default=3, help="throughput runs; the best is shown")
+    ap.add_argument("--repeat", type=int, default=5, help="throughput runs; the best is shown")
     a = ap.parse_args(argv)
     ref, work = Path(a.ref), Path(a.work)
     shutil.rmtree(work / "out", ignore_errors=True)
