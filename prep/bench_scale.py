@@ -62,7 +62,8 @@ def _peer(ref: Path, units: int, procs: int) -> float:
     processes that start together once all are ready."""
     import os
     import time
-    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+    env = {**os.environ, **{k: "1" for k in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS",
+                                             "MKL_NUM_THREADS")}}
     ps = [subprocess.Popen([sys.executable, "-c", PEER, str(ref / "mitdb" / "100"),
                             str(units // procs)], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
                            text=True, env=env) for _ in range(procs)]
