@@ -26,7 +26,7 @@ from .normalize import apply_stats, normalize
 from .pipeline import BEAT_COLUMNS, BEAT_TYPES, RecordResult, _empty_beats
 from .split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
 from .read import Source, find_sources, read_source, sha256_file, source_inputs
-from .shards import read_shard, write_shard
+from .shards import kept_summary, read_shard, write_shard
 
 log = logging.getLogger("prep")
 
@@ -481,15 +481,6 @@ class _Part:
     offset: int = 0     # first tensor row of the record
 
 
-def _beats_of(r: RecordResult, columns: list[str] | None = None) -> pd.DataFrame:
-    b = r.table("beats", columns)
-    if b is None or not len(b.columns):
-        b = _empty_beats()
-        if columns is not None:
-            b = b[columns]
-    return b
-
-
 def _beats_arrow(r: RecordResult, schema):
     """Record ``r``'s beat table as a pyarrow Table in ``schema``'s columns, less the last two
     (patient and split, added by consolidation)."""
@@ -511,26 +502,19 @@ def _windows_arrow(r: RecordResult):
 
 
 def _columns_of(r: RecordResult, columns: list[str]) -> dict[str, np.ndarray]:
-    """A few beat-table columns as arrays: from memory, or read from the shard without pandas
-    (consolidation reads them several times, so this read must be cheap)."""
-    if r.beats is None and r.store is not None:
-        got = r.store.arrays("beats", columns)
-        if got is not None:
-            return got
-    b = _beats_of(r, columns)
-    return {c: b[c].to_numpy() for c in columns}
+    """A few beat-table columns as arrays (from memory or from the shard, without pandas)."""
+    t = _beats_arrow(r, _beats_schema())
+    return {c: t.column(c).to_numpy(zero_copy_only=False) for c in columns}
 
 
 def _kept_classes(r: RecordResult) -> dict:
     """Kept beats per class (unlabeled under None): from the shard's summary when it has one,
-    else from the beat table."""
+    else summarized here from the beat table."""
     kept = r.store.kept if r.beats is None and r.store is not None else None
-    if kept is not None:
-        return {k: int(v) for k, v in kept["classes"]}
-    b = _columns_of(r, ["included", "class"])
-    inc = np.asarray(b["included"], bool)
-    vc = pd.Series(np.asarray(b["class"], dtype=object)[inc]).value_counts(dropna=False)
-    return {(None if pd.isna(k) else str(k)): int(v) for k, v in vc.items()}
+    if kept is None:
+        kept = kept_summary(pd.DataFrame(_columns_of(
+            r, ["included", "class", "r_sample", "tensor_index"])))
+    return {k: int(v) for k, v in kept["classes"]}
 
 
 def _rules_apply(split: str, fixed: bool, train_classes: set) -> bool:

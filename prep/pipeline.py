@@ -68,15 +68,6 @@ class RecordResult:
             return int(self.store.n_rows.get("beats") or 0)
         return 0 if self.beats is None else len(self.beats)
 
-    def table(self, name: str, columns: list[str] | None = None) -> pd.DataFrame | None:
-        """The 'beats' or 'windows' table, from memory or read from the record's shard."""
-        df = getattr(self, name)
-        if df is None and self.store is not None:
-            df = self.store.load(name, columns)
-        if df is not None and columns is not None:
-            df = df[columns]
-        return df
-
     @property
     def n_kept(self) -> int:
         return 0 if self.tensor is None else int(self.tensor.shape[0])

@@ -55,10 +55,9 @@ def _ipc(df: pd.DataFrame) -> bytes:
     return sink.getvalue().to_pybytes()
 
 
-def _read_ipc(data: bytes, columns: list[str] | None = None):
+def _read_ipc(data: bytes):
     import pyarrow as pa
-    t = pa.ipc.open_file(pa.BufferReader(data)).read_all()
-    return t if columns is None else t.select(columns)
+    return pa.ipc.open_file(pa.BufferReader(data)).read_all()
 
 
 def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) -> None:
@@ -166,17 +165,17 @@ class OnDisk:
 class ShardTables:
     """A committed shard's beat and window tables and stage logs, read only when asked for.
 
-    Consolidation reads each table a few times, a record at a time, instead of holding every
-    record's tables at once: memory then does not grow with the number of records. Each read is
-    checked against the commit marker again.
+    Consolidation reads a record's tables while it visits that record, instead of holding
+    every record's tables at once: memory then does not grow with the number of records. Each
+    read is checked against the commit marker again.
     """
 
     def __init__(self, fs, folder: str, hashes: dict, n_rows: dict, kept: dict | None = None):
         self.fs, self.folder, self.hashes, self.n_rows = fs, folder, hashes, n_rows
         self.kept = kept  # kept_summary() of the beat table (None in shards written before it)
 
-    def _bytes(self, table: str) -> bytes:
-        name = f"{table}.arrow"
+    def _bytes(self, name: str) -> bytes:
+        """A shard file's bytes, checked against the commit marker."""
         with self.fs.open(f"{self.folder}/{name}", "rb") as fh:
             data = fh.read()
         if hashlib.sha256(data).hexdigest() != self.hashes.get(name):
@@ -186,33 +185,15 @@ class ShardTables:
 
     def stages(self) -> list[dict]:
         """The record's stage logs (as dicts), read from its meta.json and checked again."""
-        with self.fs.open(f"{self.folder}/meta.json", "rb") as fh:
-            data = fh.read()
-        if hashlib.sha256(data).hexdigest() != self.hashes.get("meta.json"):
-            raise OSError(f"shard {self.folder}: meta.json changed after it was committed; run "
-                          "the same command again to redo this record")
-        return [StageLog(**lg).to_dict() for lg in json.loads(data)["logs"]]
+        return [StageLog(**lg).to_dict() for lg in json.loads(self._bytes("meta.json"))["logs"]]
 
-    def load(self, table: str, columns: list[str] | None = None) -> pd.DataFrame | None:
-        """``table`` is 'beats' or 'windows'; None when the record wrote no such table."""
-        data = self._bytes(table)
+    def arrow(self, table: str):
+        """The 'beats' or 'windows' table as a pyarrow Table (None when the record wrote no such
+        table), without building a DataFrame."""
+        data = self._bytes(f"{table}.arrow")
         if self.n_rows.get(table) is None:
             return None
-        return _read_ipc(data, columns).to_pandas()
-
-    def arrow(self, table: str, columns: list[str] | None = None):
-        """The table (or some columns) as a pyarrow Table, without building a DataFrame."""
-        data = self._bytes(table)
-        if self.n_rows.get(table) is None:
-            return None
-        return _read_ipc(data, columns)
-
-    def arrays(self, table: str, columns: list[str]) -> dict[str, np.ndarray] | None:
-        """Some columns as numpy arrays, read by pyarrow without building a DataFrame."""
-        t = self.arrow(table, columns)
-        if t is None:
-            return None
-        return {c: t.column(c).to_numpy() for c in columns}
+        return _read_ipc(data)
 
 
 def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
