@@ -45,6 +45,7 @@ class RunSummary:
     axis: list[str]
     exit_code: int
     splits: dict | None = None
+    class_yield: dict | None = None   # the manifest's class_yield section
 
 
 def _peek_leads(src: Source, cfg: Config) -> list[str] | None:
@@ -683,6 +684,7 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
         "patient": patients, "split": [part.split for part in parts],
         "warnings": ["; ".join(r.warnings) for r in results],
         "inputs": [[{"file": f, "sha256": h} for f, h in r.inputs] for r in results]})
+    yield_section = _class_yield(results, parts, records)
 
     n_failed = sum(r.status == "failed" for r in results)
     n_nolead = sum(r.status == "no_usable_lead" for r in results)
@@ -710,6 +712,7 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
                    "classes": {**AAMI_CLASSES, **mapping}, "unlabeled": UNLABELED,
                    "train_classes": sorted(train_classes)},
         "splits": split_info,
+        "class_yield": yield_section,
         "inputs": {"given": given, "records": record_paths},
         "counts": {"records": len(results), "records_ok": len(results) - n_failed - n_nolead,
                    "records_failed": n_failed, "records_no_usable_lead": n_nolead,
@@ -723,6 +726,52 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
     code = (EXIT_NONE_USABLE if usable == 0 else EXIT_SOME_FAILED if usable < len(results)
             else EXIT_OK)
     return Assembled(tensor, mask, center, scale, beats, leads, records, windows, manifest, code)
+
+
+#: an abnormal class is "clearly" kept less than N when its kept share is this much lower and it
+#: has at least _YIELD_MIN_BEATS reference beats (design choice, no source)
+_YIELD_GAP = 0.05
+_YIELD_MIN_BEATS = 20
+
+
+def _class_yield(results: list[RecordResult], parts: list, records: pd.DataFrame) -> dict:
+    """Reference beats per class and the share of them kept, over the records with reference
+    annotations; adds ``n_ref_C``, ``n_undetected_C``, ``n_kept_C`` columns to ``records``
+    (<NA> for records without annotations) and warns when an abnormal class is kept at a
+    clearly lower share than N. Kept counts are before split rules (train_classes)."""
+    classes = sorted({c for r in results for c in r.class_yield})
+    total = {c: {"reference": 0, "detected": 0, "kept": 0} for c in classes}
+    for c in classes:
+        cols = {f"n_ref_{c}": [], f"n_undetected_{c}": [], f"n_kept_{c}": []}
+        for r in results:
+            y = r.class_yield.get(c) if r.class_yield else None
+            if not r.class_yield:
+                v = [None, None, None]
+            else:
+                y = y or {"reference": 0, "detected": 0, "kept": 0}
+                v = [y["reference"], y["reference"] - y["detected"], y["kept"]]
+                for k in ("reference", "detected", "kept"):
+                    total[c][k] += y[k]
+            for col, x in zip(cols, v):
+                cols[col].append(x)
+        for col, vals in cols.items():
+            records[col] = pd.array(vals, dtype="Int64")
+    for c, t in total.items():
+        t["kept_share"] = round(t["kept"] / t["reference"], 6) if t["reference"] else None
+    warnings = []
+    n_share = total.get("N", {}).get("kept_share")
+    for c in ("S", "V", "F"):
+        t = total.get(c)
+        if (t and n_share is not None and t["reference"] >= _YIELD_MIN_BEATS
+                and t["kept_share"] < n_share - _YIELD_GAP):
+            warnings.append(f"class {c}: {t['kept_share']:.1%} of {t['reference']} reference "
+                            f"beats kept, against {n_share:.1%} of N beats; the dataset "
+                            "under-represents this class (see beatmill reasons and the "
+                            "excluded rows of this class in beats.parquet)")
+    return {"records_with_reference": int(sum(bool(r.class_yield) for r in results)),
+            "by_class": total, "warnings": warnings,
+            "rule": f"warn when an abnormal class (S, V, F) with at least {_YIELD_MIN_BEATS} "
+                    f"reference beats is kept at a share more than {_YIELD_GAP:.0%} below N's"}
 
 
 class _RecordsSection(Mapping):
@@ -774,7 +823,7 @@ def _summary(out: Path, a: Assembled) -> RunSummary:
     c = a.manifest["counts"]
     return RunSummary(out, c["records"], c["records_failed"], c["records_no_usable_lead"],
                       c["beats"], c["beats_kept"], a.manifest["lead_axis"], a.exit_code,
-                      a.manifest["splits"])
+                      a.manifest["splits"], a.manifest.get("class_yield"))
 
 
 def _gather_normalized(results: list[RecordResult], order: list[tuple[int, str]], local_rows,
@@ -927,4 +976,18 @@ def split_summary(info: dict) -> str:
     for sname, v in info.items():
         lines.append(f"{sname:<6}{len(v['patients']):>9}{v['beats']:>8}" +
                      "".join(f"{v['classes'].get(c, 0):>11}" for c in classes))
+    return "\n".join(lines)
+
+
+def yield_summary(section: dict | None) -> str:
+    """The end-of-run lines on class yield: reference beats per class and the share kept
+    ('' when no record has reference annotations)."""
+    if not section or not section.get("by_class"):
+        return ""
+    by = section["by_class"]
+    lines = [f"reference beats kept, per class ({section['records_with_reference']} annotated "
+             "records):",
+             "  ".join(f"{c} {t['kept']}/{t['reference']} ({t['kept_share']:.1%})"
+                       for c, t in by.items() if t["reference"])]
+    lines += [f"warning: {w}" for w in section.get("warnings", [])]
     return "\n".join(lines)

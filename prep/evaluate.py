@@ -48,3 +48,32 @@ def match_beats(detected, reference, fs: float, window_ms: float = 150.0) -> Sco
             i += 1
             j += 1
     return Score(tp, int(r.size - tp), int(d.size - tp))
+
+
+def match_pairs(detected, reference, fs: float, window_ms: float = 150.0
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """The pairs :func:`match_beats` counts: for each detection the index of its reference beat
+    (-1 when unmatched), and for each reference beat the index of its detection (-1 when missed).
+
+    Inputs must be sorted; indices refer to the inputs as given.
+
+    >>> d2r, r2d = match_pairs([100, 400, 900], [102, 395, 600], 1000.0)
+    >>> d2r.tolist(), r2d.tolist()
+    ([0, 1, -1], [0, 1, -1])
+    """
+    d = np.asarray(detected, dtype=np.int64)
+    r = np.asarray(reference, dtype=np.int64)
+    tol = window_ms * fs / 1000
+    d2r = np.full(d.size, -1, np.int64)
+    r2d = np.full(r.size, -1, np.int64)
+    i = j = 0
+    while i < d.size and j < r.size:  # the same walk as match_beats
+        if d[i] < r[j] - tol:
+            i += 1
+        elif d[i] > r[j] + tol:
+            j += 1
+        else:
+            d2r[i], r2d[j] = j, i
+            i += 1
+            j += 1
+    return d2r, r2d

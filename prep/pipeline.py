@@ -33,10 +33,11 @@ from .segment import beat_windows
 log = logging.getLogger("prep")
 
 BEAT_COLUMNS = ["beat_id", "record", "r_sample", "r_time_s", "rr_prev_s", "rr_next_s", "included",
-                "reasons", "tensor_index", "flags", "label", "class", "rhythm", "detect_conf", "n_leads_seen",
+                "is_beat", "reasons", "tensor_index", "flags", "label", "class", "rhythm", "detect_conf", "n_leads_seen",
                 "template_corr", "qrs_match", "hf_ratio", "bad_fraction", "amplitude_z",
                 "window_grade", "second_detector"]
-BEAT_TYPES = ["str", "str", "int64", "float64", "float64", "float64", "bool", "str", "int64",
+BEAT_TYPES = ["str", "str", "int64", "float64", "float64", "float64", "bool", "bool", "str",
+              "int64",
               "str", "str", "str", "str", "float64", "int64", "float64", "float64", "float64",
               "float64", "float64", "str", "bool"]  # one per column of BEAT_COLUMNS
 
@@ -60,6 +61,7 @@ class RecordResult:
     comments: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
     windows: pd.DataFrame | None = None        # one row per lead and quality window
+    class_yield: dict = field(default_factory=dict)  # class -> reference / detected / kept
     store: object | None = None                # shards.ShardTables: tables left on storage
 
     @property
@@ -131,12 +133,13 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
         d.r, d.conf = d.r[inside], d.conf[inside]
     other = {j: second_detector(y[j], fs) for j in dets} if cfg.windows.enabled else {}
     empty = np.zeros(0, np.int64)
-    win_tables, grades, noise_grades = [], {}, {}
+    win_tables, grades, rhythm, one_shape = [], {}, {}, {}
     for j in range(n_l):
         w = lead_windows(notched[j], y[j], masks[j], fs, dets[j].r if j in dets else empty,
                          other.get(j, empty), mains, cfg.windows, grade=cfg.windows.enabled)
         grades[j] = grade_codes(w["grade"])
-        noise_grades[j] = grade_codes(w["noise_grade"])
+        rhythm[j] = (w["rhythm_findings"] != "").to_numpy()
+        one_shape[j] = (w["tsqi_average"].fillna(-1) >= cfg.windows.tsqi_noisy).to_numpy()
         w.insert(0, "lead", rec.leads[j])
         w.insert(0, "record", rec.name)
         win_tables.append(w)
@@ -166,7 +169,8 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     use_dets = [dets[j] for j in sorted(dets) if usable[j]]
     valid = [grades[d.lead][np.minimum(d.r // L, grades[d.lead].size - 1)] < 2 for d in use_dets]
     fused, lg = fuse_leads(use_dets, n_l, fs, cfg.rpeaks, rec.leads, valid,
-                           [grades[d.lead] < 2 for d in use_dets], L)
+                           [grades[d.lead] < 2 for d in use_dets], L,
+                           clean=[grades[d.lead] == 0 for d in use_dets])
     res.logs.append(lg)
     res.leads = [_lead_row(rec, j, usable[j], lead_reason[j], axis, fault[j],
                            res.windows[res.windows.lead == rec.leads[j]]) for j in range(n_l)]
@@ -189,8 +193,9 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
 
     r = fused.r
     n = r.size
-    reasons: list[list[str]] = [[] if a else (["unusable_window"] if u else ["one_lead_only"])
-                                for a, u in zip(fused.accepted, fused.unusable)]
+    reasons: list[list[str]] = [[] if a else (["between_beats"] if b else ["unusable_window"]
+                                              if u else ["one_lead_only"])
+                                for a, u, b in zip(fused.accepted, fused.unusable, fused.between)]
     acc = np.flatnonzero(fused.accepted)
     ra = r[acc]
     used_gap = gap[usable].any(axis=0)
@@ -213,12 +218,12 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     res.logs.append(lg)
     # per beat and axis slot: the window grade of that lead at R; unusable slots are masked
     g_slot = np.full((vi.size, n_ax), 2, np.int8)
-    n_slot = np.full((vi.size, n_ax), 2, np.int8)
+    rhythm_slot = np.zeros((vi.size, n_ax), bool)
     for k, src in enumerate(rows_src):
         if slot_ok[k]:
             at = np.minimum(r[vi] // L, grades[src].size - 1)
             g_slot[:, k] = grades[src][at]
-            n_slot[:, k] = noise_grades[src][at]
+            rhythm_slot[:, k] = rhythm[src][at]
     beat_mask = slot_ok[None, :] & (g_slot < 2)
     # leads the reference annotator marked noisy/unreadable at a beat are masked for that beat
     all_noisy = np.zeros(vi.size, bool)
@@ -229,10 +234,18 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
             ann = (window_fraction(noisy_ann[rows_src], sv, ev) > 0) & beat_mask
             all_noisy = beat_mask.any(axis=1) & ~(beat_mask & ~ann).any(axis=1)
             beat_mask &= ~ann
+    # a lead flat or clipped in a beat's window is masked for that beat when another lead it
+    # keeps is sound there (a large ectopic beat at the converter's rail keeps its other leads);
+    # with no sound lead left the beat is excluded (flat_or_clipped, below)
+    if vi.size:
+        faulty = (window_fraction(bad[rows_src], sv, ev) > cfg.quality.max_bad_fraction_in_beat) \
+            & beat_mask
+        spare = (beat_mask & ~faulty).any(axis=1)
+        beat_mask &= ~(faulty & spare[:, None])
     beats_mv[~beat_mask] = 0.0
 
     # a beat is "in noise" when every lead it keeps is noisy there by a noise test
-    in_noise = ((n_slot >= 1) | ~beat_mask).all(axis=1) & beat_mask.any(axis=1)
+    in_noise = ((g_slot >= 1) | ~beat_mask).all(axis=1) & beat_mask.any(axis=1)
     scores = _beat_scores(r, vi, sv, ev, beats_mv, beat_mask, rows_src, notched, bad, fs, cfg,
                           other, usable, ra, fused.support.sum(axis=1), fused.confidence)
     scores["_in_noise"] = in_noise
@@ -242,9 +255,11 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
         n_usable_here += grades[j][np.minimum(r[vi] // L, grades[j].size - 1)] < 2
     scores["_n_here"] = n_usable_here
     scores["_lone"] = (n_usable_here <= 1) & (int(usable.sum()) >= 2)
+    library_ok = {j: (grades[j] == 0) & one_shape[j] for j in grades}
     scores["qrs_match"], scores["_qrs_library"] = _qrs_match(y, r, vi, usable, grades,
-                                                             noise_grades, L, fs, cfg.quality)
-    scores["_noise_any"] = ((n_slot >= 1) & beat_mask).any(axis=1)
+                                                             library_ok, L, fs, cfg.quality)
+    scores["_noise_any"] = ((g_slot >= 1) & beat_mask).any(axis=1)
+    scores["_rhythm"] = (rhythm_slot & beat_mask).any(axis=1)
     flags: list[list[str]] = [[] for _ in range(n)]
     _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, res, all_noisy)
 
@@ -256,7 +271,9 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     res.tensor = beats_mv[pos_in_valid[included]].astype(np.float32)  # as stored in shards
     res.mask = beat_mask[pos_in_valid[included]]
 
-    rr_prev, rr_next = _rr(r, ra, fs)
+    # heartbeats: every row but detections judged not to be one; RR runs between heartbeats only
+    is_beat = np.array([not any(R.group(c) == R.NOT_A_BEAT for c in x) for x in reasons], bool)
+    rr_prev, rr_next = _rr(r, r[is_beat], fs)
     labels = attach_labels(r, rec.annotations, fs, cfg.labels.window_ms)
     if rec.annotations is not None and ra.size >= 20:
         n_ann = int(np.isin(rec.annotations.symbol, list(BEAT_SYMBOLS)).sum())
@@ -267,18 +284,49 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
                                 f"{cfg.labels.window_ms:g} ms; labels not attached (is the file "
                                 "for another record?)")
             labels = np.full(r.size, "", dtype=object)
+    classes = beat_classes(labels, mapping).astype(str)
+    res.class_yield = class_yield(r, included, rec.annotations, fs, cfg.labels.window_ms, mapping)
     res.beats = pd.DataFrame({
         "beat_id": [f"{rec.name}:{int(s)}" for s in r], "record": rec.name,
         "r_sample": r.astype(np.int64), "r_time_s": r / fs, "rr_prev_s": rr_prev,
-        "rr_next_s": rr_next, "included": included,
+        "rr_next_s": rr_next, "included": included, "is_beat": is_beat,
         "reasons": [R.join(x) for x in reasons], "tensor_index": tensor_index,
         "flags": [R.join(x) if inc else "" for x, inc in zip(flags, included)],
-        "label": labels.astype(str), "class": beat_classes(labels, mapping).astype(str),
+        "label": labels.astype(str), "class": classes,
         "rhythm": rhythm_at(r, rec.annotations).astype(str),
         "detect_conf": np.round(fused.confidence, 6),
         "n_leads_seen": fused.support.sum(axis=1).astype(np.int64),
         **{k: (np.round(v, 6) if v.dtype.kind == "f" else v) for k, v in scores.items()}})
     return res
+
+
+def class_yield(r: np.ndarray, included: np.ndarray, ann, fs: float, window_ms: float,
+                mapping: dict[str, str] | None = None) -> dict[str, dict[str, int]]:
+    """Per reference class: reference beats, those a row was found for, and those kept.
+
+    Reference beats and rows are matched one to one within ``window_ms`` (the EC57 walk of
+    :func:`prep.evaluate.match_pairs`), so a reference beat is counted once whatever labels
+    the rows got. Empty where the record has no reference beat annotations.
+
+    >>> from prep.model import Annotations
+    >>> a = Annotations(np.array([100, 400, 700]), np.array(["N", "V", "N"], dtype=object))
+    >>> class_yield(np.array([101, 402]), np.array([True, False]), a, 1000.0, 150)
+    {'N': {'reference': 2, 'detected': 1, 'kept': 1}, 'V': {'reference': 1, 'detected': 1, 'kept': 0}}
+    """
+    from .evaluate import match_pairs
+    if ann is None:
+        return {}
+    sel = np.isin(ann.symbol, list(BEAT_SYMBOLS))
+    if not sel.any():
+        return {}
+    order = np.argsort(ann.sample[sel], kind="stable")
+    ref, sym = ann.sample[sel][order], ann.symbol[sel][order]
+    cls = beat_classes(sym, mapping).astype(str)
+    _, ref_to_row = match_pairs(r, ref, fs, window_ms)
+    found = ref_to_row >= 0
+    kept = found & included[np.maximum(ref_to_row, 0)]
+    return {str(c): {"reference": int((cls == c).sum()), "detected": int((found & (cls == c)).sum()),
+                "kept": int((kept & (cls == c)).sum())} for c in sorted(set(cls))}
 
 
 def _lead_row(rec: Record, j: int, used: bool, reason: str, axis: list[str], fault: dict,
@@ -376,21 +424,21 @@ def _beat_scores(r, vi, sv, ev, beats_mv, beat_mask, rows_src, notched, bad, fs,
     return out
 
 
-def _qrs_match(y, r, vi, usable, grades, noise_grades, L, fs, q) -> tuple[np.ndarray, int]:
+def _qrs_match(y, r, vi, usable, grades, library_ok, L, fs, q) -> tuple[np.ndarray, int]:
     """qrs_match for every row (NaN where the beat has no window), and the number of clean
-    beats compared against: the cut beats whose every usable lead is in a window the noise
-    tests grade good (rhythm tests are left out on purpose: a stretch of bigeminy is
-    rhythm-noisy, and its ectopic beats must be in the library)."""
+    beats compared against: the cut beats whose every usable lead is in a window graded good
+    (the grade holds no rhythm test, so a stretch of bigeminy gives its ectopic beats to the
+    library)."""
     out = np.full(r.size, np.nan)
     if vi.size == 0:
         return out, 0
     rv = r[vi]
     g = np.stack([grades[j][np.minimum(rv // L, grades[j].size - 1)] for j in range(len(grades))],
                  axis=1)
-    ng = np.stack([noise_grades[j][np.minimum(rv // L, noise_grades[j].size - 1)]
-                   for j in range(len(grades))], axis=1)
     lead_ok = usable[None, :] & (g < 2)
-    clean = ((ng == 0) & (g < 2)) | ~usable[None, :]
+    lib = np.stack([library_ok[j][np.minimum(rv // L, library_ok[j].size - 1)]
+                    for j in range(len(grades))], axis=1)
+    clean = lib | ~usable[None, :]
     library = rv[clean.all(axis=1) & lead_ok.any(axis=1)]
     out[vi] = qrs_match(y, rv, lead_ok, library, fs, q.qrs_half_ms, q.qrs_match_k,
                         q.qrs_library_beats)
@@ -412,6 +460,10 @@ def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, r
     q, wq = cfg.quality, cfg.windows
     for i in vi[all_noisy]:
         reasons[i].append("annotated_noise")
+    # inside annotated noise, a beat the second detector does not confirm is not counted as one
+    if q.exclude_detector_disagreement:
+        for i in vi[all_noisy & ~scores["second_detector"][vi]]:
+            reasons[i].append("detector_disagreement")
     n_ax = beat_mask.shape[1]
     has = beat_mask.any(axis=1)
     noisy_w = ((g_slot == 1) & beat_mask).any(axis=1) & has
@@ -450,6 +502,7 @@ def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, r
         (has & ~scores["second_detector"][vi] & ~(weak & q.exclude_detector_disagreement), flags,
          "detector_disagreement"),
         (has & (beat_mask.sum(axis=1) < n_ax), flags, "partial_leads"),
+        (has & scores.pop("_rhythm"), flags, "unusual_rhythm"),
     ]
     for hit, target, code in checks:  # one step per rule, not per beat
         for i in vi[np.flatnonzero(hit)]:

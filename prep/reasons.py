@@ -8,6 +8,10 @@ REASONS: dict[str, tuple[str, str]] = {
     # code: (stage that sets it, explanation)
     "one_lead_only": ("rpeaks", "seen by a minority of the used leads, none of them locally "
                                 "trusted at that time (docs/rpeaks.md, fusion)"),
+    "between_beats": ("rpeaks", "not seen by every usable lead, and its two neighbours make one "
+                                "normal cardiac cycle together (no more than 1.4 x the local "
+                                "median RR apart): an extra complex the rhythm leaves no room "
+                                "for, not a heartbeat (docs/quality.md)"),
     "unusable_window": ("windows", "every used lead is graded unusable at this beat (or the beat was "
                                    "seen only in unusable stretches)"),
     "noisy_window": ("windows", "a used lead is graded noisy at this beat and windows.exclude_noisy "
@@ -57,8 +61,32 @@ FLAGS: dict[str, str] = {
     "detector_disagreement": "neurokit2's detector misses this beat, but every used lead saw it "
                              "with a typical or stronger envelope (often a wide ectopic beat)",
     "long_pause": "next to an RR longer than quality.long_pause_s",
+    "unusual_rhythm": "a lead it keeps has a rhythm finding in its window (irregular RR, a long "
+                      "RR or a rate outside windows.hr_range_bpm; see rhythm_findings in "
+                      "windows.parquet): reported, never a reason to exclude",
     "overlaps_neighbour": "the window holds a neighbour's R (fast rhythm or a close ectopic beat)",
 }
+
+
+#: what an excluded row is: ``not_a_beat`` (a detection judged not to be a heartbeat: it does not
+#: take part in RR intervals, heart rate or any rhythm figure; ``is_beat`` False), ``beat``
+#: (a real heartbeat dropped for the quality of its signal or window) or ``split`` (a heartbeat
+#: left out by the split rules).
+NOT_A_BEAT = "not_a_beat"
+GROUPS: dict[str, str] = {
+    **dict.fromkeys(["between_beats", "one_lead_only", "unusable_window", "weak_in_noise",
+                     "unmatched_in_noise", "detector_disagreement"], NOT_A_BEAT),
+    **dict.fromkeys(["not_train_class", "not_in_split_lists"], "split"),
+}
+
+
+def group(code: str) -> str:
+    """The group of a reason code (see :data:`GROUPS`; every other code is ``beat``).
+
+    >>> group("one_lead_only"), group("off_edge")
+    ('not_a_beat', 'beat')
+    """
+    return GROUPS.get(code, "beat")
 
 
 def join(codes) -> str:

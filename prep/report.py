@@ -196,6 +196,15 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     cls.columns.name = None
     cls = cls.reset_index()
     parts.append(_table(cls, "Kept beats per split and class"))
+    cy = m.get("class_yield") or {}
+    if cy.get("by_class"):
+        rows = [{"class": k, "reference beats": v["reference"],
+                 "never detected": v["reference"] - v["detected"], "kept": v["kept"],
+                 "kept share": "-" if v["kept_share"] is None else f"{v['kept_share']:.1%}"}
+                for k, v in cy["by_class"].items()]
+        parts.append(_table(pd.DataFrame(rows), "Reference beats kept, per class "
+                            f"({cy['records_with_reference']} annotated records)"))
+        parts += [f"<p class='caution'>{html.escape(w)}</p>" for w in cy.get("warnings", [])]
     pat = t.groupby(["patient", "split"]).agg(detected=("included", "size"),
                                              kept=("included", "sum")).reset_index()
     parts.append(_table(pat, "Beats per patient"))

@@ -81,6 +81,15 @@ def detect_lead(x, fs: float, cfg: RpeaksConfig = RpeaksConfig()):
     >>> p, c, _ = detect_lead(x, fs); len(p)
     20
     """
+    acc, conf, band, _ = _detect(x, fs, cfg)
+    return acc, conf, band
+
+
+def _detect(x, fs: float, cfg: RpeaksConfig):
+    """:func:`detect_lead`, also returning the QRS energy of every sample relative to the local
+    reference (the envelope's maximum within ``fuse_window_ms`` over the reference height of the
+    nearest candidate): 1 is a typical beat, ``searchback_threshold`` the least the detector
+    ever takes for a beat."""
     x = as_signal(x, fs, "detect_lead", min_samples=8)
     if x.ndim != 1:
         raise ValueError(f"detect_lead: one lead expected, got shape {x.shape}")
@@ -88,7 +97,7 @@ def detect_lead(x, fs: float, cfg: RpeaksConfig = RpeaksConfig()):
     dist = max(1, int(round(cfg.min_rr_ms * fs / 1000)))
     cand, _ = signal.find_peaks(env, distance=int(round(0.2 * fs)))
     if cand.size == 0 or np.max(env) <= 0:
-        return np.zeros(0, np.int64), np.zeros(0), band
+        return np.zeros(0, np.int64), np.zeros(0), band, np.zeros(x.size)
     h = env[cand]
     ref = pd.Series(h).rolling(_REF_CANDIDATES, center=True, min_periods=1).quantile(
         _REF_QUANTILE).to_numpy()
@@ -128,7 +137,10 @@ def detect_lead(x, fs: float, cfg: RpeaksConfig = RpeaksConfig()):
         bad = bad[np.r_[True, np.diff(bad) > 1]]
         acc = np.delete(acc, bad)
     conf = env[acc] / ref[np.clip(np.searchsorted(cand, acc), 0, cand.size - 1)]
-    return acc.astype(np.int64), conf, band
+    tol = max(1, int(round(cfg.fuse_window_ms * fs / 1000)))
+    near = ndimage.maximum_filter1d(env, 2 * tol + 1, mode="nearest")
+    energy = near / np.interp(np.arange(x.size), cand, ref)
+    return acc.astype(np.int64), conf, band, energy
 
 
 def lead_polarity(x: np.ndarray, peaks: np.ndarray, half: int) -> int:
@@ -199,12 +211,14 @@ class Fused:
     accepted: np.ndarray
     r_lead: np.ndarray
     unusable: np.ndarray | None = None  # seen only in unusable stretches
+    between: np.ndarray | None = None   # a minority detection inside one cardiac cycle
 
 
 def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarray], fs: float,
          cfg: RpeaksConfig = RpeaksConfig(), window_s: float = _QUALITY_WINDOW_S,
          valid: list[np.ndarray] | None = None, window_ok: list[np.ndarray] | None = None,
-         window_len: int | None = None) -> Fused:
+         window_len: int | None = None, clean: list[np.ndarray] | None = None,
+         energy: list[np.ndarray] | None = None) -> Fused:
     """Fuse per-lead detections (refined R positions) of the usable leads into one beat list.
 
     A beat seen by a strict majority of the leads is accepted. A beat seen by fewer is accepted
@@ -217,6 +231,14 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     marked ``unusable``. ``window_ok`` (one bool array per lead, per quality window of
     ``window_len`` samples): where a lead is unusable it is neither trusted nor counted in the
     majority, so the leads usable there decide.
+
+    ``clean`` (per lead, per window: graded good by the noise tests) and ``energy`` (per lead,
+    per sample: QRS energy over the local reference, from the detector) judge a minority beat
+    from the signal, whatever its shape: a lead that is clean where it saw the beat with at
+    least a typical beat's QRS energy (confidence >= 1) also trusts it, and a beat is refused when a lead that is clean there and did not see it holds
+    no QRS energy at all at that time (below ``searchback_threshold``, the least the detector
+    ever takes for a beat): a real heartbeat shows in every lead, if weakly; an artifact in one
+    lead does not.
     """
     n_leads = len(peaks)
     if n_leads == 0 or sum(p.size for p in peaks) == 0:
@@ -249,6 +271,8 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     support[cid[valid_s], lead_s[valid_s]] = True
     best = np.zeros(n_c)
     np.maximum.at(best, cid, conf_s)
+    conf_m = np.zeros((n_c, n_leads))  # each lead's detector confidence for each beat
+    np.maximum.at(conf_m, (cid, lead_s), conf_s)
     # the R of a cluster: from the primary lead if it saw the beat, else the first lead in order
     rank = np.empty(n_leads, np.int64)
     rank[order] = np.arange(n_leads)
@@ -271,7 +295,24 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     others = [j for j in range(n_leads) if j != primary]
     if others:
         trusted[:, others] = good[:, others] & ~good[:, [primary]]
-    accepted = ((2 * n_sup > n_here) | (support & trusted).any(1)) & (n_sup > 0)
+    minority_ok = (support & trusted).any(1)
+    contradicted = np.zeros(n_c, bool)
+    clean_strong = np.zeros(n_c, bool)
+    unsure = n_sup < n_here  # a minority beat
+    if clean is not None and energy is not None and window_len:
+        cl = np.column_stack([c[np.clip(r // window_len, 0, c.size - 1)] for c in clean])
+        if window_ok is not None:
+            cl &= ok_m
+        e = np.column_stack([en[np.clip(r, 0, en.size - 1)] for en in energy])
+        contradicted = (cl & ~seen & (e < cfg.searchback_threshold)).any(1)
+        clean_strong = (support & cl & (conf_m >= 1.0)).any(1)
+        unsure = unsure | ~(support & cl).any(1)  # or no lead that saw it is clean there
+        # trust in a lead's template quality alone holds only where no other usable lead is
+        # clean there (it then cannot confirm); next to a clean lead that did not see it, a
+        # beat must be clean and strong where it was seen
+        other_clean = (cl & ~seen).any(1)
+        minority_ok = (((support & trusted).any(1) & ~other_clean) | clean_strong) & ~contradicted
+    accepted = ((2 * n_sup > n_here) | minority_ok) & (n_sup > 0)
     # two accepted beats closer than the refractory period are one beat seen at two places
     # (leads disagree on where R is): keep the better supported one, then the primary's
     dist = int(round(cfg.min_rr_ms * fs / 1000))
@@ -285,8 +326,40 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
         wb = n_sup[b_] * 2 + support[b_, primary]
         drop = np.where(wa > wb, b_, np.where(wb > wa, a_, np.where(best[a_] >= best[b_], b_, a_)))
         accepted[drop] = False
+    between = between_beats(r, accepted, unsure & ~clean_strong)
+    accepted &= ~between
     return Fused(r.astype(np.int64), seen, best, accepted, r_lead.astype(np.int64),
-                 unusable=n_sup == 0)
+                 unusable=n_sup == 0, between=between)
+
+
+def between_beats(r: np.ndarray, accepted: np.ndarray, minority: np.ndarray) -> np.ndarray:
+    """Accepted minority detections that sit inside one cardiac cycle of their neighbours.
+
+    A detection that not every usable lead saw, whose two accepted neighbours are no further
+    apart than ``_PRUNE_RR`` x the local median RR (the detector's own pruning rule), adds a
+    complex where the rhythm leaves no room for one: the beats before and after make a normal
+    cycle together. Ectopic beats are not of that kind: a ventricular beat is followed by a
+    compensatory pause and an atrial premature beat resets the cycle, so their neighbours are
+    1.5 to 2 cycles apart. Returns a bool per detection (True: not a heartbeat).
+
+    >>> r = np.array([0, 100, 150, 200, 300, 400])
+    >>> between_beats(r, np.ones(6, bool), np.array([0, 0, 1, 0, 0, 0], bool)).tolist()
+    [False, False, True, False, False, False]
+    """
+    out = np.zeros(r.size, bool)
+    for _ in range(2):  # a second pass sees neighbours the first one left
+        ai = np.flatnonzero(accepted & ~out)
+        if ai.size < 4:
+            break
+        rr = np.diff(r[ai]).astype(float)
+        med = _running_median(rr, 9)
+        span = r[ai[2:]] - r[ai[:-2]]
+        hit = np.flatnonzero(minority[ai[1:-1]] & (span < _PRUNE_RR * med[1:])) + 1
+        hit = hit[np.r_[True, np.diff(hit) > 1]] if hit.size else hit
+        if hit.size == 0:
+            break
+        out[ai[hit]] = True
+    return out
 
 
 @dataclass
@@ -299,6 +372,7 @@ class LeadDetections:
     band: np.ndarray
     quality: np.ndarray
     polarity: int
+    energy: np.ndarray | None = None  # QRS energy near each sample over the local reference
 
 
 def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig = RpeaksConfig()
@@ -308,7 +382,7 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
     out = []
     dist = max(1, int(round(cfg.min_rr_ms * fs / 1000)))
     for j in np.flatnonzero(usable):
-        p, c, band = detect_lead(x[j], fs, cfg)
+        p, c, band, energy = _detect(x[j], fs, cfg)
         r, pol = refine_r(x[j], p, fs, cfg.refine_window_ms)
         # refinement can bring two peaks together; keep the more confident one
         keep = _sparse_refractory(r, c + 1e-9, dist)
@@ -316,28 +390,33 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
         r, c = r[sel], c[sel]
         _, first = np.unique(r, return_index=True)
         r, c = r[first], c[first]
-        out.append(LeadDetections(int(j), r, c, band, window_template_quality(band, r, fs), pol))
+        out.append(LeadDetections(int(j), r, c, band, window_template_quality(band, r, fs), pol,
+                                  energy))
     return out
 
 
 def fuse_leads(dets: list[LeadDetections], n_leads: int, fs: float,
                cfg: RpeaksConfig = RpeaksConfig(), names: list[str] | None = None,
                valid: list[np.ndarray] | None = None, window_ok: list[np.ndarray] | None = None,
-               window_len: int | None = None):
-    """Fuse :func:`detect_leads` results; returns (:class:`Fused` over all leads, StageLog)."""
+               window_len: int | None = None, clean: list[np.ndarray] | None = None):
+    """Fuse :func:`detect_leads` results; returns (:class:`Fused` over all leads, StageLog).
+
+    ``clean`` (one bool array per detection set, per window): see :func:`fuse`."""
     names = names or [str(j) for j in range(n_leads)]
     idx = np.array([d.lead for d in dets], dtype=np.int64)
     log = StageLog("rpeaks", params={k: getattr(cfg, k) for k in cfg.__dataclass_fields__})
     for d in dets:
         log.counts[f"detections_{names[d.lead]}"] = int(d.r.size)
     fused = fuse([d.r for d in dets], [d.conf for d in dets], [d.quality for d in dets], fs, cfg,
-                 valid=valid, window_ok=window_ok, window_len=window_len)
+                 valid=valid, window_ok=window_ok, window_len=window_len, clean=clean,
+                 energy=None if clean is None else [d.energy for d in dets])
     full = np.zeros((fused.r.size, n_leads), bool)
     if idx.size:
         full[:, idx] = fused.support
     lead_of = idx[fused.r_lead] if fused.r.size else fused.r_lead
     unusable = fused.unusable if fused.unusable is not None else np.zeros(fused.r.size, bool)
-    fused = Fused(fused.r, full, fused.confidence, fused.accepted, lead_of, unusable)
+    fused = Fused(fused.r, full, fused.confidence, fused.accepted, lead_of, unusable,
+                  fused.between if fused.between is not None else np.zeros(fused.r.size, bool))
     primary = _primary([d.quality for d in dets])
     log.derived["polarity"] = {names[d.lead]: d.polarity for d in dets}
     log.derived["primary_lead"] = names[int(idx[primary])] if idx.size else None
@@ -346,7 +425,8 @@ def fuse_leads(dets: list[LeadDetections], n_leads: int, fs: float,
                         round(float(np.nanmedian(d.quality)), 4)) for d in dets}
     log.counts.update(fused=int(fused.r.size), accepted=int(fused.accepted.sum()),
                       only_in_unusable=int(unusable.sum()),
-                      one_lead_only=int((~fused.accepted & ~unusable).sum()))
+                      between_beats=int(fused.between.sum()),
+                      one_lead_only=int((~fused.accepted & ~unusable & ~fused.between).sum()))
     return fused, log
 
 

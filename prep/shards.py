@@ -70,7 +70,8 @@ def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) ->
     meta = {"name": res.name, "status": res.status, "error": res.error, "fs": res.fs,
             "duration_s": res.duration_s, "n_leads": res.n_leads, "inputs": res.inputs,
             "comments": res.comments, "warnings": res.warnings, "leads": res.leads,
-            "logs": [lg.to_dict() for lg in res.logs], "kept": kept_summary(res.beats)}
+            "logs": [lg.to_dict() for lg in res.logs], "kept": kept_summary(res.beats),
+            "class_yield": res.class_yield}
     tensor = res.tensor if res.tensor is not None else np.zeros((0, 0, 0), np.float32)
     hashes = {"tensor.npy": _write_npy_hashed(fs, f"{d}/tensor.npy", tensor.astype(np.float32,
                                                                                      copy=False))}
@@ -236,7 +237,8 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
     meta = json.loads(blobs["meta.json"])
     res = RecordResult(meta["name"], meta["status"], meta["error"], meta["fs"], meta["duration_s"],
                        meta["n_leads"], [tuple(x) for x in meta["inputs"]],
-                       comments=meta["comments"], warnings=meta["warnings"], leads=meta["leads"])
+                       comments=meta["comments"], warnings=meta["warnings"], leads=meta["leads"],
+                       class_yield=meta.get("class_yield", {}))
     if tables or res.status == "failed":  # else the stage logs stay on storage (store.stages)
         res.logs = [StageLog(**lg) for lg in meta["logs"]]
     if local and not tables:  # left on disk: no mapping held per record

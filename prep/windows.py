@@ -1,8 +1,10 @@
 """Window quality stage: grade every lead in fixed windows with signal-quality indices.
 
 For each lead and window (default 10 s) the stage computes direct fault shares, published noise
-indices and rhythm plausibility, and grades the window ``good``, ``noisy`` or ``unusable``, naming
-the indices that decided. Definitions and thresholds: docs/quality.md.
+indices and rhythm measures. The grade (``good``, ``noisy`` or ``unusable``, with the indices that
+decided) comes from the noise tests alone; rhythm findings (irregular RR, a long RR, a rate
+outside a range) go to their own column, ``rhythm_findings``, and never change the grade: ectopy
+and pauses are findings about the heart, not noise. Definitions and thresholds: docs/quality.md.
 
 Indices (per lead and window):
 
@@ -14,8 +16,10 @@ Indices (per lead and window):
 - ``bsqi``: agreement of our detector with ``neurokit2``'s within 150 ms, matched over the union;
 - ``line_ratio``: power within 1 Hz of mains and harmonics after the notch, over total;
 - ``hf_ratio``: power above 40 Hz over total (muscle);
-- ``hr_bpm``, ``max_rr_s``, ``rr_ratio`` and ``tsqi`` (mean correlation of the window's beats with
-  their average, Orphanidou et al. 2015).
+- ``tsqi``: beat-to-beat similarity, after Orphanidou et al. 2015, but each beat is compared with
+  the beats of the whole lead that resemble it most (its ``k``-th best correlation), not with one
+  average: a window of bigeminy is as similar as a window of sinus beats, noise is not;
+- rhythm (reported, never graded): ``hr_bpm``, ``max_rr_s``, ``rr_ratio``.
 """
 from __future__ import annotations
 
@@ -25,9 +29,14 @@ import pandas as pd
 from .config import WindowsConfig
 
 GRADES = ("good", "noisy", "unusable")
+#: rhythm finding -> the window index it reads (column ``rhythm_findings``; never part of the grade)
+RHYTHM_FINDINGS = {"rate_out_of_range": "hr_bpm", "long_rr": "max_rr_s", "irregular_rr": "rr_ratio"}
+_TSQI_K = 3            # a beat must resemble this many other beats of its lead (as qrs_match)
+_TSQI_LIBRARY = 1000   # at most this many beats of the lead, evenly spread, are compared
+_TSQI_POINTS = 64      # points per beat segment (the lead is low-passed at 40 Hz)
 INDEX_COLUMNS = ["fault_fraction", "flat_fraction", "clipped_fraction", "missing_fraction",
                  "amplitude_mv", "ksqi", "ssqi", "psqi", "bassqi", "bsqi", "line_ratio",
-                 "hf_ratio", "hr_bpm", "max_rr_s", "rr_ratio", "tsqi", "n_beats"]
+                 "hf_ratio", "hr_bpm", "max_rr_s", "rr_ratio", "tsqi", "tsqi_average", "n_beats"]
 
 
 def _frames(x: np.ndarray, L: int, fill) -> np.ndarray:
@@ -96,7 +105,7 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
                 df[c] = np.nan
         df.insert(2, "grade", "good")
         df.insert(3, "decided_by", "")
-        df.insert(4, "noise_grade", "good")
+        df.insert(4, "rhythm_findings", "")
         return df
     # moments without nan-functions: the last window is zero-padded and its count is exact
     fx = _frames(filtered, L, 0.0)
@@ -160,19 +169,74 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
         ratio[big.index] = big.to_numpy() / np.maximum(small.to_numpy(), 1e-9)
     out["hr_bpm"], out["max_rr_s"], out["rr_ratio"] = hr, mx, ratio
     out["tsqi"] = _template_sqi(filtered, ours, wa, fs, n_win)
+    out["tsqi_average"] = _average_sqi(filtered, ours, wa, fs, n_win)
     df = pd.DataFrame(out)
     grade, why = grade_windows(df, cfg)
     df.insert(2, "grade", grade)
     df.insert(3, "decided_by", why)
-    rhythm = {"hr_bpm", "max_rr_s", "rr_ratio"}
-    # the grade from noise tests alone: rhythm findings (bigeminy, pauses) are not noise
-    df.insert(4, "noise_grade", [g if g != "noisy" or set(w.split(";")) - rhythm else "good"
-                                 for g, w in zip(grade, why)])
+    df.insert(4, "rhythm_findings", rhythm_findings(df, cfg))
     return df
 
 
+def beat_similarity(x: np.ndarray, r: np.ndarray, fs: float, k: int = _TSQI_K,
+                    max_library: int = _TSQI_LIBRARY) -> np.ndarray:
+    """How much each beat resembles the beats of its own kind in one lead, in [-1, 1].
+
+    Each beat's segment (-150..+350 ms of the filtered lead ``x``, mean removed, at most
+    ``_TSQI_POINTS`` points) is correlated with every beat of a library (at most ``max_library``
+    beats of the lead, evenly spread); the score is the ``k``-th best correlation, the beat itself
+    left out. A beat of any morphology that recurs in the lead (sinus, a recurring ventricular
+    shape, an aberrant conduction) scores high; noise, which does not recur, scores low. With
+    fewer than ``k + 1`` beats, ``k`` shrinks to what there is. NaN for beats too near the edges.
+
+    >>> fs = 250.0; n = int(20 * fs); x = np.zeros(n)
+    >>> r = np.arange(125, n - 100, 250); x[r] = 1.0           # narrow beats ...
+    >>> x[r[1::2] - 5] = -1.0                                  # ... every second one different
+    >>> x = np.convolve(x, np.hanning(9), "same")
+    >>> bool(np.nanmin(beat_similarity(x, r, fs)) > 0.99)
+    True
+    """
+    a, b = int(round(0.15 * fs)), int(round(0.35 * fs))
+    out = np.full(r.size, np.nan)
+    ok = np.flatnonzero((r >= a) & (r < x.size - b))
+    if ok.size < 2:
+        return out
+    step = max(1, (a + b) // _TSQI_POINTS)
+    off = np.arange(-a, b, step)
+    seg = x[r[ok][:, None] + off].astype(np.float32)
+    seg -= seg.mean(axis=1, keepdims=True)
+    seg /= np.maximum(np.linalg.norm(seg, axis=1, keepdims=True), 1e-9)
+    lib_i = (np.linspace(0, ok.size - 1, max_library).round().astype(int)
+             if ok.size > max_library else np.arange(ok.size))
+    lib = seg[lib_i]
+    kk = int(min(k, lib_i.size - 1))
+    pos_in_lib = np.full(ok.size, -1)
+    pos_in_lib[lib_i] = np.arange(lib_i.size)
+    for s0 in range(0, ok.size, 2048):
+        i = np.arange(s0, min(ok.size, s0 + 2048))
+        c = seg[i] @ lib.T
+        own = pos_in_lib[i] >= 0
+        c[np.flatnonzero(own), pos_in_lib[i][own]] = -np.inf
+        out[ok[i]] = np.partition(c, c.shape[1] - kk, axis=1)[:, c.shape[1] - kk]
+    return out
+
+
 def _template_sqi(x: np.ndarray, r: np.ndarray, w: np.ndarray, fs: float, n_win: int) -> np.ndarray:
-    """Mean correlation of each window's beats (-150..+350 ms) with the window's average beat."""
+    """Mean :func:`beat_similarity` of each window's beats (NaN where the window holds none)."""
+    out = np.full(n_win, np.nan)
+    sim = beat_similarity(x, r, fs)
+    ok = np.isfinite(sim)
+    if not ok.any():
+        return out
+    cnt = np.bincount(w[ok], minlength=n_win)[:n_win]
+    tot = np.bincount(w[ok], weights=sim[ok], minlength=n_win)[:n_win]
+    return np.where(cnt >= 1, tot / np.maximum(cnt, 1), np.nan)
+
+
+def _average_sqi(x: np.ndarray, r: np.ndarray, w: np.ndarray, fs: float, n_win: int) -> np.ndarray:
+    """Mean correlation of each window's beats (-150..+350 ms) with the window's average beat
+    (Orphanidou et al. 2015). Not part of the grade (ectopy lowers it as much as noise does);
+    it only keeps windows of mixed shapes out of the clean-beat library of ``qrs_match``."""
     a, b = int(round(0.15 * fs)), int(round(0.35 * fs))
     ok = (r >= a) & (r < x.size - b)
     out = np.full(n_win, np.nan)
@@ -188,12 +252,27 @@ def _template_sqi(x: np.ndarray, r: np.ndarray, w: np.ndarray, fs: float, n_win:
     t = tpl[w]
     c = (seg * t).sum(1) / np.sqrt((seg * seg).sum(1) * (t * t).sum(1) + 1e-30)
     s = np.bincount(w, weights=c, minlength=n_win)[:n_win]
-    out = np.where(cnt >= 2, s / np.maximum(cnt, 1), np.nan)
-    return out
+    return np.where(cnt >= 2, s / np.maximum(cnt, 1), np.nan)
+
+
+def rhythm_findings(df: pd.DataFrame, cfg: WindowsConfig) -> list[str]:
+    """';'-joined rhythm findings of each window (``''`` when none): reported, never graded.
+
+    ``rate_out_of_range``: median heart rate outside ``hr_range_bpm``; ``long_rr``: longest RR
+    above ``max_rr_s``; ``irregular_rr``: longest over shortest RR above ``rr_ratio_max``.
+    """
+    lo_h, hi_h = cfg.hr_range_bpm
+    hit = {"rate_out_of_range": (df.hr_bpm < lo_h) | (df.hr_bpm > hi_h),
+           "long_rr": df.max_rr_s > cfg.max_rr_s,
+           "irregular_rr": df.rr_ratio > cfg.rr_ratio_max}
+    H = pd.DataFrame(hit).to_numpy()
+    names = list(hit)
+    return [";".join(n for n, b in zip(names, row) if b) for row in H]
 
 
 def grade_windows(df: pd.DataFrame, cfg: WindowsConfig) -> tuple[list[str], list[str]]:
-    """Grade each window from its indices; returns grades and the ';'-joined deciding tests."""
+    """Grade each window from its noise indices; returns grades and the ';'-joined deciding
+    tests. Rhythm measures take no part (see :func:`rhythm_findings`)."""
     lo_a, hi_a = cfg.amplitude_range_mv
     unusable = {
         "fault_fraction": df.fault_fraction > cfg.unusable_fault_fraction,
@@ -202,7 +281,6 @@ def grade_windows(df: pd.DataFrame, cfg: WindowsConfig) -> tuple[list[str], list
         "tsqi": df.tsqi.fillna(-1) < cfg.tsqi_unusable,
     }
     lo_p, hi_p = cfg.psqi_range
-    lo_h, hi_h = cfg.hr_range_bpm
     noisy = {
         "fault_fraction": df.fault_fraction > cfg.noisy_fault_fraction,
         "ksqi": df.ksqi < cfg.ksqi_min,
@@ -210,9 +288,6 @@ def grade_windows(df: pd.DataFrame, cfg: WindowsConfig) -> tuple[list[str], list
         "bassqi": df.bassqi < cfg.bassqi_min,
         "bsqi": df.bsqi.fillna(0) < cfg.bsqi_noisy,
         "tsqi": df.tsqi.fillna(-1) < cfg.tsqi_noisy,
-        "hr_bpm": (df.hr_bpm < lo_h) | (df.hr_bpm > hi_h),
-        "max_rr_s": df.max_rr_s > cfg.max_rr_s,
-        "rr_ratio": df.rr_ratio > cfg.rr_ratio_max,
         "line_ratio": df.line_ratio > cfg.line_ratio_max,
         "hf_ratio": df.hf_ratio > cfg.hf_ratio_max,
     }

@@ -112,6 +112,11 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
     if summary.splits and not quiet:
         from ..dataset import split_summary
         typer.echo(split_summary(summary.splits))
+    if summary.class_yield and not quiet:
+        from ..dataset import yield_summary
+        text = yield_summary(summary.class_yield)
+        if text:
+            typer.echo(text)
     raise typer.Exit(summary.exit_code)
 
 
@@ -204,11 +209,15 @@ def reasons() -> None:
 
       beatmill reasons
     """
-    from ..reasons import FLAGS, REASONS
+    from ..reasons import FLAGS, REASONS, group
 
-    typer.echo("Exclusion reasons (beats.parquet 'reasons'):")
-    for code, (stage, text) in REASONS.items():
-        typer.echo(f"  {code:<18} [{stage}] {text}")
+    typer.echo("Exclusion reasons (beats.parquet 'reasons'), by group; rows with a not_a_beat "
+               "reason have is_beat False:")
+    for g in ("not_a_beat", "beat", "split"):
+        typer.echo(f" {g}:")
+        for code, (stage, text) in REASONS.items():
+            if group(code) == g:
+                typer.echo(f"  {code:<22} [{stage}] {text}")
     typer.echo("Flags on kept beats (beats.parquet 'flags'):")
     for code, text in FLAGS.items():
         typer.echo(f"  {code:<18} {text}")
