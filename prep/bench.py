@@ -171,6 +171,7 @@ def record_yield(r, res) -> dict:
     err = np.abs(kept["rr_prev_s"].to_numpy()[m] - rr_ref[d2r[m]])
     out["kept"], out["kept_unmatched"] = len(kept), int((d2r < 0).sum())
     out["rr_n"], out["rr_off"] = int(np.isfinite(err).sum()), int((err > 0.1).sum())
+    out["rr_unknown"] = int(np.isnan(kept["rr_prev_s"].to_numpy()).sum())
     ib = b.loc[b["is_beat"], "r_sample"].to_numpy()
     s = match_beats(ib, ref, r.fs)
     out["is_beat"] = (s.tp, s.fn, s.fp)
@@ -187,6 +188,7 @@ def _yield_line(name: str, y: dict) -> str:
     return (f"{name:<16}" + "".join(cells) +
             f"{100 * y['kept_unmatched'] / max(y['kept'], 1):>9.3f}"
             f"{100 * y['rr_off'] / max(y['rr_n'], 1):>9.3f}"
+            f"{100 * y['rr_unknown'] / max(y['kept'], 1):>8.2f}"
             f"{100 * tp / max(tp + fn, 1):>8.2f}{100 * tp / max(tp + fp, 1):>8.2f}")
 
 
@@ -194,10 +196,12 @@ def class_yield_table(ref: Path, cfg: Config) -> None:
     """Print :func:`record_yield` for every annotated record in ``ref``, and per database."""
     print("\nClass yield: share of reference beats kept per class (annotated noise left out), "
           "n = reference beats;\nunmatched = kept beats with no reference beat within 150 ms; "
-          "rr off = kept beats whose rr_prev_s is > 100 ms\noff the reference RR; is_beat Se / "
+          "rr off = kept beats whose rr_prev_s is > 100 ms\noff the reference RR; rr ? = kept "
+          "beats whose rr_prev_s is unknown (NaN: the first beat, or an unconfirmed\ndetection "
+          "inside the interval); is_beat Se / "
           "+P = rows with is_beat True against every reference beat (150 ms)")
     print(f"{'record':<16}" + "".join(f"{c + ' %':>7}{'n':>6}" for c in "NSVF") +
-          f"{'unmatch%':>9}{'rr off%':>9}{'ib Se':>8}{'ib +P':>8}")
+          f"{'unmatch%':>9}{'rr off%':>9}{'rr ?%':>8}{'ib Se':>8}{'ib +P':>8}")
     total: dict[str, dict] = {}
     for db, rec in YIELD:
         base = ref / db / rec
@@ -207,11 +211,11 @@ def class_yield_table(ref: Path, cfg: Config) -> None:
         y = record_yield(r, process_record(r, cfg, r.leads))
         print(_yield_line(f"{db}/{rec}", y))
         t = total.setdefault(db, {"classes": {c: (0, 0) for c in "NSVF"}, "kept": 0,
-                                  "kept_unmatched": 0, "rr_n": 0, "rr_off": 0,
+                                  "kept_unmatched": 0, "rr_n": 0, "rr_off": 0, "rr_unknown": 0,
                                   "is_beat": (0, 0, 0)})
         for c in "NSVF":
             t["classes"][c] = tuple(a + b for a, b in zip(t["classes"][c], y["classes"][c]))
-        for k in ("kept", "kept_unmatched", "rr_n", "rr_off"):
+        for k in ("kept", "kept_unmatched", "rr_n", "rr_off", "rr_unknown"):
             t[k] += y[k]
         t["is_beat"] = tuple(a + b for a, b in zip(t["is_beat"], y["is_beat"]))
     for db, t in total.items():

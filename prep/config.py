@@ -330,16 +330,21 @@ class WindowsConfig:
                            "Li et al. 2008 (bSQI > 0.8 for good ECG, from memory)", lo=0.0, hi=1.0)
     bsqi_unusable: float = _f(0.5, "bSQI below this: unusable.", "common practice, no source",
                               lo=0.0, hi=1.0)
-    tsqi_noisy: float = _f(0.66, "Mean correlation of the window's beats with their template "
-                           "below this: noisy.", "Orphanidou et al. 2015 (IEEE JBHI 19:832), 0.66",
+    tsqi_noisy: float = _f(0.66, "tSQI (mean over the window's beats of each beat's 3rd best "
+                           "correlation with the other beats of its lead) below this: noisy. "
+                           "Also the least tsqi_average (correlation with the window's average "
+                           "beat) of a window whose beats enter the qrs_match library.", "Orphanidou et al. 2015 (IEEE JBHI 19:832), 0.66",
                            lo=-1.0, hi=1.0)
     tsqi_unusable: float = _f(0.3, "Template correlation below this: unusable.",
                               "common practice, no source", lo=-1.0, hi=1.0)
-    hr_range_bpm: list = _f(None, "Heart rate outside this range: noisy.",
+    hr_range_bpm: list = _f(None, "Heart rate outside this range: rhythm finding "
+                            "rate_out_of_range (reported, never part of the grade).",
                             "Orphanidou et al. 2015: 40-180 bpm", factory=lambda: [40.0, 180.0])
-    max_rr_s: float = _f(3.0, "Longest RR above this: noisy.", "Orphanidou et al. 2015: 3 s",
+    max_rr_s: float = _f(3.0, "Longest RR above this: rhythm finding long_rr (reported, never "
+                         "part of the grade).", "Orphanidou et al. 2015: 3 s",
                          lo=0.5, hi=30.0)
-    rr_ratio_max: float = _f(2.2, "Longest over shortest RR above this: noisy.",
+    rr_ratio_max: float = _f(2.2, "Longest over shortest RR above this: rhythm finding "
+                             "irregular_rr (reported, never part of the grade).",
                              "Orphanidou et al. 2015: 2.2", lo=1.0, hi=20.0)
     line_ratio_max: float = _f(0.1, "Share of power within 1 Hz of the mains frequency and its "
                                "harmonics, after the notch, above this: noisy.",

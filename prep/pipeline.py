@@ -274,6 +274,10 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
     # heartbeats: every row but detections judged not to be one; RR runs between heartbeats only
     is_beat = np.array([not any(R.group(c) == R.NOT_A_BEAT for c in x) for x in reasons], bool)
     rr_prev, rr_next = _rr(r, r[is_beat], fs)
+    # a detection that could not be confirmed in noise may have been a heartbeat: where one lies
+    # between a row and its neighbouring heartbeat, that RR is unknown (NaN), not a guess
+    unsure = np.array([any(c in _UNCONFIRMED for c in x) for x in reasons], bool)
+    rr_prev, rr_next = _unknown_across(r, r[unsure & ~is_beat], rr_prev, rr_next, fs)
     labels = attach_labels(r, rec.annotations, fs, cfg.labels.window_ms)
     if rec.annotations is not None and ra.size >= 20:
         n_ann = int(np.isin(rec.annotations.symbol, list(BEAT_SYMBOLS)).sum())
@@ -534,7 +538,8 @@ def _beat_reasons(reasons, flags, vi, scores, beat_mask, g_slot, slot_ok, cfg, r
 
 
 def _rr(r: np.ndarray, accepted: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray]:
-    """RR to the previous and next fusion-accepted beat, in s (NaN where there is none)."""
+    """RR of every row to the previous and next of the beats ``accepted`` (sorted R samples),
+    in s (NaN where there is none)."""
     k = np.searchsorted(accepted, r, side="left")
     prev = np.where(k > 0, accepted[np.clip(k - 1, 0, None)], -1) if accepted.size else np.full(r.size, -1)
     k2 = np.searchsorted(accepted, r, side="right")
@@ -543,6 +548,28 @@ def _rr(r: np.ndarray, accepted: np.ndarray, fs: float) -> tuple[np.ndarray, np.
     rp = np.where(prev >= 0, (r - prev) / fs, np.nan)
     rn = np.where(nxt >= 0, (nxt - r) / fs, np.nan)
     return rp, rn
+
+
+#: reasons of detections that are not counted as heartbeats for want of confirmation (rather
+#: than contradicted by the signal): an RR across one of them is unknown
+_UNCONFIRMED = ("weak_in_noise", "unmatched_in_noise", "detector_disagreement", "unusable_window")
+
+
+def _unknown_across(r, unsure, rr_prev, rr_next, fs):
+    """RR intervals set to NaN where an unconfirmed detection lies strictly inside them.
+
+    >>> _unknown_across(np.array([0, 100, 200]), np.array([150]), np.array([np.nan, 1., 1.]),
+    ...                 np.array([1., 1., np.nan]), 100.0)
+    (array([nan,  1., nan]), array([ 1., nan, nan]))
+    """
+    if unsure.size == 0:
+        return rr_prev, rr_next
+    u = np.sort(unsure)
+    prev = r - np.nan_to_num(rr_prev) * fs
+    nxt = r + np.nan_to_num(rr_next) * fs
+    across_p = np.searchsorted(u, r, "left") > np.searchsorted(u, prev, "right")
+    across_n = np.searchsorted(u, nxt, "left") > np.searchsorted(u, r, "right")
+    return np.where(across_p, np.nan, rr_prev), np.where(across_n, np.nan, rr_next)
 
 
 def _fault_reason(f: dict) -> str:
