@@ -14,7 +14,7 @@ from .leads import canonical_lead, default_axis, resolve_axis
 from .model import Annotations, Record
 from .pipeline import safe_process
 from .read import _check_rate
-from .reasons import FLAGS, REASONS
+from .reasons import FLAGS, REASONS, group
 
 # reason -> (score column, config section, config key) for explanations
 _EVIDENCE = {
@@ -149,7 +149,7 @@ class Dataset:
         reasons = []
         for code in filter(None, str(row["reasons"]).split(";")):
             stage, text = REASONS.get(code, ("?", "unknown code"))
-            item = {"code": code, "stage": stage, "explanation": text}
+            item = {"code": code, "stage": stage, "group": group(code), "explanation": text}
             if code in _EVIDENCE:
                 col, sec, key = _EVIDENCE[code]
                 item.update(score_name=col, score=_num(row[col]), threshold_name=f"{sec}.{key}",
@@ -166,13 +166,16 @@ class Dataset:
                   (w["end"] > row["r_sample"])]
             fs = float(self.records.set_index("record").loc[row["record"], "fs"])
             windows = [{"lead": x.lead, "grade": x.grade, "decided_by": x.decided_by,
+                        "rhythm_findings": getattr(x, "rhythm_findings", ""),
                         "start_s": round(x.start / fs, 3), "end_s": round(x.end / fs, 3)}
                        for x in w.itertuples()]
         return {"beat_id": beat_id, "record": row["record"], "patient": row.get("patient", ""),
                 "split": row.get("split", ""), "r_sample": int(row["r_sample"]),
                 "r_time_s": float(row["r_time_s"]), "label": row["label"],
                 "class": row.get("class", ""), "included": bool(row["included"]),
-                "tensor_index": int(row["tensor_index"]), "reasons": reasons, "flags": flags,
+                "tensor_index": int(row["tensor_index"]),
+                "is_beat": bool(row["is_beat"]) if "is_beat" in row else True,
+                "reasons": reasons, "flags": flags,
                 "scores": {c: _num(row[c]) for c in ("detect_conf", "n_leads_seen",
                                                      "template_corr", "hf_ratio", "bad_fraction")},
                 "leads_used": rec_leads[rec_leads["used"]]["lead"].tolist(),

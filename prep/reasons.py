@@ -6,12 +6,14 @@ from __future__ import annotations
 
 REASONS: dict[str, tuple[str, str]] = {
     # code: (stage that sets it, explanation)
-    "one_lead_only": ("rpeaks", "seen by a minority of the used leads, none of them locally "
-                                "trusted at that time (docs/rpeaks.md, fusion)"),
-    "between_beats": ("rpeaks", "not seen by every usable lead, and its two neighbours make one "
-                                "normal cardiac cycle together (no more than 1.4 x the local "
-                                "median RR apart): an extra complex the rhythm leaves no room "
-                                "for, not a heartbeat (docs/quality.md)"),
+    "one_lead_only": ("rpeaks", "seen by a minority of the used leads and not accepted: a lead "
+                                "clean there holds no QRS energy at that time, or no lead that "
+                                "saw it is clean there with a typical beat's energy or trusted "
+                                "(docs/rpeaks.md, fusion)"),
+    "between_beats": ("rpeaks", "not clean and strong where it was seen, and its two neighbours "
+                                "make one normal cardiac cycle together (no more than 1.4 x the "
+                                "local median RR apart): an extra complex, not a heartbeat "
+                                "(docs/quality.md)"),
     "unusable_window": ("windows", "every used lead is graded unusable at this beat (or the beat was "
                                    "seen only in unusable stretches)"),
     "noisy_window": ("windows", "a used lead is graded noisy at this beat and windows.exclude_noisy "

@@ -248,17 +248,20 @@ def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
     typer.echo(f"label     {e['label'] or '-'} (class {e['class']})")
     typer.echo(f"leads     {', '.join(e['leads_used']) or '-'} used")
     typer.echo("status    " + (f"kept, tensor row {e['tensor_index']}" if e["included"]
-                                else "excluded"))
+                                else "excluded, " + ("a heartbeat" if e["is_beat"] else
+                                                     "not counted as a heartbeat")))
     for x in e["reasons"]:
         ev = ""
         if "score" in x:
             ev = f": {x['score_name']} = {x['score']}, threshold {x['threshold_name']} = {x['threshold']}"
-        typer.echo(f"reason    {x['code']} [stage {x['stage']}] {x['explanation']}{ev}")
+        typer.echo(f"reason    {x['code']} [stage {x['stage']}, group {x['group']}] "
+                   f"{x['explanation']}{ev}")
     for x in e["flags"]:
         typer.echo(f"flag      {x['code']}: {x['explanation']}")
     for w in e["windows"]:
         typer.echo(f"window    {w['lead']}: {w['grade']} ({w['start_s']}-{w['end_s']} s)" +
-                   (f", decided by {w['decided_by']}" if w["decided_by"] else ""))
+                   (f", decided by {w['decided_by']}" if w["decided_by"] else "") +
+                   (f"; rhythm: {w['rhythm_findings']}" if w.get("rhythm_findings") else ""))
     sc = ", ".join(f"{k} {v:.3g}" if isinstance(v, float) else f"{k} {v}"
                    for k, v in e["scores"].items() if v is not None)
     typer.echo(f"scores    {sc}")
