@@ -35,7 +35,7 @@ def _manifest_bytes(path: Path) -> bytes:
 
 
 def digests() -> dict[str, dict[str, str]]:
-    from prep.dataset import run
+    from prep.dataset.run import run
     out: dict[str, dict[str, str]] = {}
     with tempfile.TemporaryDirectory() as tmp:
         for name, inputs in RUNS.items():

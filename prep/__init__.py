@@ -18,7 +18,8 @@ __version__ = "0.1.0"
 __all__ = ["process", "run", "open_dataset", "Dataset", "Config", "BeatmillError", "ConfigError",
            "RecordError", "__version__"]
 
-_WHERE = {"process": "api", "open_dataset": "api", "Dataset": "api", "run": "dataset",
+_WHERE = {"process": "dataset.view", "open_dataset": "dataset.view", "Dataset": "dataset.view",
+          "run": "dataset.run",
           "Config": "config", "BeatmillError": "errors", "ConfigError": "errors",
           "RecordError": "errors"}
 

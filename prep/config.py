@@ -22,7 +22,7 @@ from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
-from .errors import ConfigError
+from prep.errors import ConfigError
 
 
 def _f(default, doc: str, source: str, *, choices=None, lo=None, hi=None, lo_open=False,

@@ -10,6 +10,9 @@ from typing import Any
 
 import numpy as np
 
+#: Beat symbols that mark a QRS in WFDB annotations (PhysioNet annotation codes).
+BEAT_SYMBOLS = frozenset("NLRBAaJSVrFejnE/fQ?")
+
 
 @dataclass
 class StageLog:

@@ -22,7 +22,7 @@ try:
 except ImportError as exc:  # pragma: no cover - exercised where torch is absent
     raise ImportError("prep.torch needs PyTorch: pip install 'beatmill[torch]'") from exc
 
-from .api import open_dataset
+from prep.dataset.view import open_dataset
 
 
 class BeatDataset(_TorchDataset):

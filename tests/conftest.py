@@ -26,7 +26,7 @@ def ref_path(*parts: str) -> Path:
 @pytest.fixture(scope="session")
 def demo_run(tmp_path_factory):
     """One run of the whole pipeline on demo_records, shared by the tests that read it."""
-    from prep.dataset import run
+    from prep.dataset.run import run
 
     out = tmp_path_factory.mktemp("demo_run") / "run"
     summary = run([DEMO], out)

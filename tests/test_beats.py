@@ -4,12 +4,12 @@ import pytest
 from scipy import signal
 
 from prep.config import SegmentConfig
-from prep.labels import attach_labels
+from prep.stages.labels import attach_labels
 from prep.model import Annotations
-from prep.normalize import normalize
-from prep.quality import clip_mask, flat_mask, template_corr
-from prep.resample import cut_and_resample
-from prep.segment import beat_windows
+from prep.stages.normalize import normalize
+from prep.quality.scores import clip_mask, flat_mask, template_corr
+from prep.stages.resample import cut_and_resample
+from prep.stages.segment import beat_windows
 
 
 def test_fixed_windows_and_edge_and_gap_exclusion():

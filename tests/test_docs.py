@@ -4,7 +4,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from prep.reasons import FLAGS, REASONS
+from prep.quality.reasons import FLAGS, REASONS
 
 DOCS = Path(__file__).resolve().parents[1] / "docs"
 

@@ -13,10 +13,10 @@ import pytest
 from prep.config import Config
 from prep.demo import _beat_wave
 from prep.model import Annotations, Record
-from prep.pipeline import process_record
-from prep.read import read_wfdb
-from prep.rpeaks import between_beats
-from prep.rpeaks import fuse as fuse_det
+from prep.pipeline.record import process_record
+from prep.io.read import read_wfdb
+from prep.stages.rpeaks import between_beats
+from prep.stages.rpeaks import fuse as fuse_det
 
 from .conftest import ref_path
 
@@ -175,7 +175,7 @@ def test_between_beats_spares_ectopy_with_a_pause():
 ])
 def test_abnormal_classes_are_kept_on_annotated_records(db, rec, floors):
     # reference: the databases' beat annotations, AAMI EC57 classes and 150 ms matching
-    from prep.bench import record_yield
+    from benchmarks.bench import record_yield
     r = read_wfdb(ref_path(db, rec))
     y = record_yield(r, process_record(r, Config(), r.leads))
     for c, floor in floors.items():

@@ -3,10 +3,10 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from prep.bandpass import bandpass, design_bandpass
-from prep.baseline import median_baseline, remove_baseline
+from prep.stages.bandpass import bandpass, design_bandpass
+from prep.stages.baseline import median_baseline, remove_baseline
 from prep.config import BandpassConfig, BaselineConfig, PowerlineConfig
-from prep.powerline import design_notches, remove_powerline
+from prep.stages.powerline import design_notches, remove_powerline
 
 
 def _db(sos, f, fs):

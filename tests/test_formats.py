@@ -7,9 +7,9 @@ import pandas as pd
 import pytest
 import wfdb
 
-from prep.dataset import run
-from prep.edf import parse_tals, read_edf
-from prep.read import read_wfdb
+from prep.dataset.run import run
+from prep.io.edf import parse_tals, read_edf
+from prep.io.read import read_wfdb
 
 from .conftest import DEMO, ref_path
 from .edf_by_hand import write_edf_plus

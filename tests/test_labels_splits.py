@@ -7,13 +7,13 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from prep.check import check_dataset
+from prep.dataset.check import check_dataset
 from prep.config import Config
-from prep.dataset import run
-from prep.labels import AAMI_CLASSES, beat_classes, load_mapping, noise_stretches, rhythm_at
+from prep.dataset.run import run
+from prep.stages.labels import AAMI_CLASSES, beat_classes, load_mapping, noise_stretches, rhythm_at
 from prep.model import Annotations
-from prep.read import BEAT_SYMBOLS
-from prep.split import SPLITS, assign_patients, fixed_assignment, patient_of
+from prep.model import BEAT_SYMBOLS
+from prep.dataset.split import SPLITS, assign_patients, fixed_assignment, patient_of
 
 from .conftest import DEMO, ref_path
 
@@ -140,8 +140,8 @@ def test_same_seed_same_split_and_check_catches_leakage(demo_run, tmp_path):
     assert a.equals(b)
     # forge a leak: give two records of different splits the same patient, re-hash, check
     import shutil
-    from prep.export import write_parquet
-    from prep.read import sha256_file as sha256_path
+    from prep.dataset.export import write_parquet
+    from prep.io._files import sha256_file as sha256_path
     bad = tmp_path / "leak"
     shutil.copytree(out, bad)
     t = pd.read_parquet(bad / "beats.parquet")

@@ -9,8 +9,8 @@ from typer.testing import CliRunner
 
 from prep.cli.main import app
 from prep.config import Config, WindowsConfig
-from prep.read import read_wfdb
-from prep.windows import lead_windows
+from prep.io.read import read_wfdb
+from prep.quality.windows import lead_windows
 
 from .conftest import DEMO, ref_path
 
@@ -74,8 +74,8 @@ def test_demo_faults_found_in_the_right_windows(demo_run):
 def test_nstdb_grades_follow_the_known_noise_timing(rec, min_agree):
     # MIT-BIH Noise Stress Test Database: noise from minute 5 in alternating 2-minute stretches
     # (database documentation); at 6 dB and below the grades should follow that timing
-    from prep.bench import _noise_mask
-    from prep.pipeline import process_record
+    from benchmarks.bench import _noise_mask
+    from prep.pipeline.record import process_record
     r = read_wfdb(ref_path("nstdb", rec))
     w = process_record(r, Config(), r.leads).windows
     truth = _noise_mask(r.n_samples, r.fs)[w.start.to_numpy()]
@@ -85,8 +85,8 @@ def test_nstdb_grades_follow_the_known_noise_timing(rec, min_agree):
 
 @pytest.mark.refdata
 def test_nstdb_24db_clean_stretches_stay_good():
-    from prep.bench import _noise_mask
-    from prep.pipeline import process_record
+    from benchmarks.bench import _noise_mask
+    from prep.pipeline.record import process_record
     r = read_wfdb(ref_path("nstdb", "118e24"))
     w = process_record(r, Config(), r.leads).windows
     clean = ~_noise_mask(r.n_samples, r.fs)[w.start.to_numpy()]
@@ -125,7 +125,7 @@ def test_ectopic_beats_survive_quality(demo_run):
 
 def test_qrs_match_compares_leads_together_and_excludes_self():
     # Reference: numpy.corrcoef of the joined, per-lead mean-removed segments.
-    from prep.quality import qrs_match
+    from prep.quality.scores import qrs_match
     fs, n = 250.0, 250 * 60
     t = np.arange(-12, 13)
     bump = np.exp(-0.5 * (t / 3.0) ** 2)
@@ -168,11 +168,11 @@ def test_electrode_motion_noise_false_beats_are_not_kept(snr):
     # below is the measured figure with a margin, so a further regression still fails here.
     import wfdb
 
-    from prep.bench import add_noise
+    from benchmarks.bench import add_noise
     from prep.evaluate import match_beats
-    from prep.labels import BEAT_SYMBOLS
+    from prep.model import BEAT_SYMBOLS
     from prep.model import Record
-    from prep.pipeline import process_record
+    from prep.pipeline.record import process_record
     em = wfdb.rdrecord(str(ref_path("nstdb", "em"))).p_signal.T
     n_ref = n_tp = n_kept = n_fp = 0
     for name in ("100", "119"):
@@ -198,8 +198,8 @@ def test_nstdb_published_noisy_record_keeps_no_false_beat():
     # the noise-in-noise thresholds were set on the benchmark above. Measured: 0 false beats
     # kept, 64.5 % of reference beats kept.
     from prep.evaluate import match_beats
-    from prep.labels import BEAT_SYMBOLS
-    from prep.pipeline import process_record
+    from prep.model import BEAT_SYMBOLS
+    from prep.pipeline.record import process_record
     r = read_wfdb(ref_path("nstdb", "118e00"))
     b = process_record(r, Config(), r.leads).beats
     truth = r.annotations.sample[np.isin(r.annotations.symbol, list(BEAT_SYMBOLS))]

@@ -9,7 +9,7 @@ import pytest
 from typer.testing import CliRunner
 
 from prep.cli.main import app
-from prep.check import check_dataset
+from prep.dataset.check import check_dataset
 
 CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                   "--disable-background-networking", "--disable-component-update",

@@ -6,12 +6,12 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from prep.check import check_dataset
+from prep.dataset.check import check_dataset
 from prep.config import Config
-from prep.dataset import EXIT_NONE_USABLE, EXIT_OK, EXIT_SOME_FAILED, run
+from prep.dataset.run import EXIT_NONE_USABLE, EXIT_OK, EXIT_SOME_FAILED, run
 from prep.demo import write_demo
 from prep.evaluate import match_beats
-from prep.export import TABLE_FILES, TENSOR_FILES
+from prep.dataset.export import TABLE_FILES, TENSOR_FILES
 
 from .conftest import DEMO, ref_path
 
@@ -201,7 +201,7 @@ def test_mitdb_100_keeps_its_reference_beats(tmp_path):
     t = pd.read_parquet(tmp_path / "out" / "beats.parquet")
     import wfdb
     ann = wfdb.rdann(str(base), "atr")
-    from prep.read import BEAT_SYMBOLS
+    from prep.model import BEAT_SYMBOLS
     ref = ann.sample[np.isin(ann.symbol, list(BEAT_SYMBOLS))]
     s = match_beats(t[t.included].r_sample, ref, 360.0)
     assert s.tp / ref.size >= 0.99

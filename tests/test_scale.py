@@ -9,9 +9,9 @@ import time
 
 import pytest
 
-from prep.check import check_dataset
-from prep.dataset import run
-from prep.export import TABLE_FILES, TENSOR_FILES
+from prep.dataset.check import check_dataset
+from prep.dataset.run import run
+from prep.dataset.export import TABLE_FILES, TENSOR_FILES
 
 from .conftest import DEMO, ROOT
 
@@ -32,7 +32,7 @@ def test_resume_reuses_only_unchanged_committed_shards(tmp_path, monkeypatch):
     out = tmp_path / "out"
     run([src], out)
     first = _bytes(out)
-    import prep.dataset as D
+    import prep.dataset.run as D
     calls = []
     real = D._shard_task
     monkeypatch.setattr(D, "_shard_task", lambda t: calls.append(t[0].name) or real(t))
@@ -62,7 +62,7 @@ def test_different_config_refused_on_a_killed_run(tmp_path):
 def test_sigkill_mid_run_then_resume_gives_the_same_dataset(demo_run, tmp_path):
     out, _ = demo_run
     target = tmp_path / "killed"
-    code = ("import sys; from prep.dataset import run; "
+    code = ("import sys; from prep.dataset.run import run; "
             f"run([{str(DEMO)!r}], {str(target)!r}, workers=1)")
     env = {**os.environ, "BEATMILL_WORKERS": "1"}
     p = subprocess.Popen([sys.executable, "-c", code], cwd=ROOT, env=env)
@@ -99,9 +99,9 @@ def test_chunked_and_unchunked_runs_agree():
     import numpy as np
     from pathlib import Path
 
-    from prep.chunks import chunk_plan, process_source
+    from prep.pipeline.chunks import chunk_plan, process_source
     from prep.config import Config
-    from prep.read import Source
+    from prep.io.read import Source
     from .conftest import ref_path
     base = ref_path("mitdb", "100")
     src = Source("wfdb", Path(base), "100")
@@ -128,7 +128,7 @@ def test_robust_dataset_statistics_exact_without_holding_values(monkeypatch):
     # The interval narrowing is forced to run several passes by a tiny exact-gather limit.
     import numpy as np
 
-    from prep import dataset as ds
+    from prep.dataset import run as ds
     monkeypatch.setattr(ds, "_EXACT", 40)
     rng = np.random.default_rng(7)
     batches = []
@@ -149,7 +149,7 @@ def test_streamed_table_rows_equal_one_concatenated_table(tmp_path):
     # Reference: pandas.concat of the same frames, written by pyarrow in one go.
     import pandas as pd
 
-    from prep.dataset import _ParquetRows
+    from prep.dataset.run import _ParquetRows
     frames = [pd.DataFrame({"a": [i, i + 1], "b": [f"x{i}", None], "c": [0.5 * i, None]})
               for i in range(7)] + [pd.DataFrame({"a": [], "b": [], "c": []})]
     sink = _ParquetRows(tmp_path / "t.parquet", group=3)  # several row groups
@@ -168,11 +168,11 @@ def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
     # storage, and the dataset it assembles matches one assembled from in-memory tables.
     import pandas as pd
 
-    from prep.api import open_dataset
+    from prep.dataset.view import open_dataset
     from prep.config import Config
-    from prep.dataset import _resolve_extras, assemble
-    from prep.read import find_sources
-    from prep.shards import read_shard
+    from prep.dataset.run import _resolve_extras, assemble
+    from prep.io.read import find_sources
+    from prep.dataset.shards import read_shard
     out, _ = demo_run
     root = out / ".shards"
     man = json.loads((out / "manifest.json").read_text())
@@ -213,8 +213,8 @@ def test_kept_summary_and_rule_shortcut_agree_with_the_rules():
     import numpy as np
     import pandas as pd
 
-    from prep.dataset import _rule_reasons, _rules_apply
-    from prep.shards import kept_summary
+    from prep.dataset.run import _rule_reasons, _rules_apply
+    from prep.dataset.shards import kept_summary
     b = pd.DataFrame({"included": [True, False, True, True], "class": ["N", "V", None, "V"],
                       "r_sample": [10, 20, 30, 40], "tensor_index": [0, -1, 1, 2]})
     got = kept_summary(b)
@@ -238,9 +238,9 @@ def test_edf_record_in_chunks_agrees_with_one_piece(tmp_path):
     pyedflib = pytest.importorskip("pyedflib")
     import wfdb
 
-    from prep.chunks import process_source
+    from prep.pipeline.chunks import process_source
     from prep.config import Config
-    from prep.read import Source, record_length
+    from prep.io.read import Source, record_length
     from .conftest import ref_path
     n = 12 * 60 * 360
     r = wfdb.rdrecord(str(ref_path("mitdb", "100")), sampto=n)
@@ -276,7 +276,7 @@ def test_npy_writer_hashes_in_order_writes_and_matches_numpy(tmp_path):
 
     import numpy as np
 
-    from prep.export import NpyWriter
+    from prep.dataset.export import NpyWriter
     x = np.random.default_rng(0).normal(size=(10, 2, 5)).astype(np.float32)
     w = NpyWriter(tmp_path / "a.npy", x.shape, np.float32)
     for i in range(0, 10, 3):
@@ -300,7 +300,7 @@ def test_streamed_manifest_section_writes_the_same_text_as_json_dumps(tmp_path):
     # reference), NaN written as null as elsewhere in the manifest.
     from collections.abc import Mapping
 
-    from prep.export import write_manifest
+    from prep.dataset.export import write_manifest
 
     class Lazy(Mapping):
         def __init__(self, d):
@@ -335,7 +335,7 @@ def test_lazy_shards_hold_no_memory_map(demo_run):
     # equal numpy.load's.
     import numpy as np
 
-    from prep.shards import read_shard, shard_name
+    from prep.dataset.shards import read_shard, shard_name
     out, _ = demo_run
     root = out / ".shards"
     commits = [json.loads(p.read_text()) for p in root.glob("*/COMMIT.json")]
@@ -352,8 +352,8 @@ def test_parallel_runs_start_the_largest_records_first(tmp_path):
     # Longest-processing-time-first is the classic list-scheduling rule (Graham, 1969, from
     # memory): a long record taken last would leave the other workers idle. Input size stands
     # in for processing time; equal sizes keep the input order.
-    from prep.dataset import _largest_first
-    from prep.read import Source
+    from prep.dataset.run import _largest_first
+    from prep.io.read import Source
     sizes = {"a": 10, "b": 300, "c": 10, "d": 50}
     found, inputs = [], []
     for name, n in sizes.items():

@@ -2,11 +2,11 @@
 import numpy as np
 import pytest
 
-from prep.bandpass import bandpass
-from prep.baseline import remove_baseline
+from prep.stages.bandpass import bandpass
+from prep.stages.baseline import remove_baseline
 from prep.errors import StageInputError
-from prep.powerline import remove_powerline
-from prep.rpeaks import detect_beats
+from prep.stages.powerline import remove_powerline
+from prep.stages.rpeaks import detect_beats
 
 FS = 250.0
 

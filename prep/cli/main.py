@@ -73,9 +73,9 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
       beatmill run demo_records --out runs/demo --leads II,V5 --train-classes N --workers 2
     """
     _setup_logging(verbose, quiet)
-    from ..config import Config
-    from ..dataset import run as run_dataset
-    from ..errors import BeatmillError, ConfigError
+    from prep.config import Config
+    from prep.dataset.run import run as run_dataset
+    from prep.errors import BeatmillError, ConfigError
 
     try:
         cfg = Config.from_toml(config) if config else Config()
@@ -110,10 +110,10 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
                f"{summary.n_beats} beats detected, {summary.n_kept} kept; lead axis "
                f"{','.join(summary.axis)}")
     if summary.splits and not quiet:
-        from ..dataset import split_summary
+        from prep.dataset.run import split_summary
         typer.echo(split_summary(summary.splits))
     if summary.class_yield and not quiet:
-        from ..dataset import yield_summary
+        from prep.dataset.run import yield_summary
         text = yield_summary(summary.class_yield)
         if text:
             typer.echo(text)
@@ -153,8 +153,8 @@ def config_cmd(check: Optional[Path] = typer.Option(None, "--check",
 
       beatmill config > beatmill.toml
     """
-    from ..config import Config
-    from ..errors import ConfigError
+    from prep.config import Config
+    from prep.errors import ConfigError
 
     if check:
         try:
@@ -174,7 +174,7 @@ def check(run_dir: Path = typer.Argument(..., help="A dataset folder written by 
 
       beatmill check runs/demo
     """
-    from ..check import check_dataset
+    from prep.dataset.check import check_dataset
 
     problems = check_dataset(run_dir)
     if problems:
@@ -193,7 +193,7 @@ def demo(out: Path = typer.Option(Path("demo_records"), "--out", "-o", help="Fol
 
       beatmill demo --out demo_records --overwrite
     """
-    from ..demo import write_demo
+    from prep.demo import write_demo
 
     if out.exists() and any(out.iterdir()) and not overwrite:
         _fail(f"{out} is not empty; pass --overwrite to replace the demo records there")
@@ -209,7 +209,7 @@ def reasons() -> None:
 
       beatmill reasons
     """
-    from ..reasons import FLAGS, REASONS, group
+    from prep.quality.reasons import FLAGS, REASONS, group
 
     typer.echo("Exclusion reasons (beats.parquet 'reasons'), by group; rows with a not_a_beat "
                "reason have is_beat False:")
@@ -234,8 +234,8 @@ def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
 
       beatmill why runs/demo night05:10538 --plot night05.png
     """
-    from ..api import open_dataset
-    from ..errors import BeatmillError
+    from prep.dataset.view import open_dataset
+    from prep.errors import BeatmillError
 
     try:
         ds = open_dataset(run_dir)
@@ -266,7 +266,7 @@ def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
                    for k, v in e["scores"].items() if v is not None)
     typer.echo(f"scores    {sc}")
     if plot:
-        from ..viz import plot_beat_context
+        from prep.report.figures import plot_beat_context
         try:
             path = plot_beat_context(ds, beat_id, plot)
         except (BeatmillError, OSError) as exc:
@@ -289,9 +289,9 @@ def leads(inputs: List[str] = typer.Argument(..., help="Records or folders to su
 
       beatmill leads demo_records --require usable>=0.9
     """
-    from ..survey import check_rules, parse_rule, survey
-    from ..config import Config
-    from ..errors import ConfigError
+    from prep.report.survey import check_rules, parse_rule, survey
+    from prep.config import Config
+    from prep.errors import ConfigError
 
     try:
         cfg = Config.from_toml(config) if config else Config()
@@ -328,8 +328,8 @@ def report(run_dir: Path = typer.Argument(..., help="A dataset folder."),
 
       beatmill report runs/demo
     """
-    from ..errors import BeatmillError
-    from ..report import write_report
+    from prep.errors import BeatmillError
+    from prep.report.html import write_report
 
     try:
         path = write_report(run_dir, out)

@@ -4,10 +4,10 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage, signal
 
-from ._checks import as_signal
-from ._design import warped_corner
-from .config import BaselineConfig
-from .model import StageLog
+from prep.stages._checks import as_signal
+from prep.stages._design import warped_corner
+from prep.config import BaselineConfig
+from prep.model import StageLog
 
 
 def _odd(n: float) -> int:

@@ -6,21 +6,17 @@ file read. Errors name the file and say what to do.
 """
 from __future__ import annotations
 
-import hashlib
 import json
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from .config import ReadConfig
-from .errors import RecordError
-from .leads import canonical_lead, classify_channel, scale_to_mv
-from .model import Annotations, Record
-
-#: Beat symbols that mark a QRS in WFDB annotations (PhysioNet annotation codes).
-BEAT_SYMBOLS = frozenset("NLRBAaJSVrFejnE/fQ?")
-
+from prep.config import ReadConfig
+from prep.errors import RecordError
+from prep.leads import canonical_lead, classify_channel, scale_to_mv
+from prep.io._files import check_rate, sha256_file
+from prep.model import Annotations, Record
 
 @dataclass(frozen=True)
 class Source:
@@ -29,25 +25,6 @@ class Source:
     kind: str
     path: Path  # WFDB: the base path without extension; CSV: the file
     name: str
-
-
-MIN_FS_HZ = 50.0       # below this the QRS band (5-20 Hz) and its slopes are not resolved
-MAX_FS_HZ = 100_000.0  # beyond this a rate is not believable for ECG
-
-
-def _check_rate(fs: float, shown: str) -> None:
-    if not np.isfinite(fs) or not MIN_FS_HZ <= fs <= MAX_FS_HZ:
-        raise RecordError(f"sampling rate {fs:g} Hz is not usable (ECG needs {MIN_FS_HZ:g} to "
-                          f"{MAX_FS_HZ:g} Hz); fix the rate field or pass the right --fs",
-                          path=shown, stage="read")
-
-
-def sha256_file(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def find_sources(items: list[str | Path]) -> tuple[list[Source], list[str]]:
@@ -145,7 +122,7 @@ def read_source(src: Source, cfg: ReadConfig, inputs=None, sampfrom: int = 0,
     if src.kind == "wfdb":
         rec = read_wfdb(src.path, cfg, name=src.name, inputs=inputs, **ranged)
     elif src.kind == "edf":
-        from .edf import read_edf
+        from prep.io.edf import read_edf
         rec = read_edf(src.path, name=src.name, inputs=inputs or source_inputs(src, cfg),
                        **ranged)
     else:
@@ -170,7 +147,7 @@ def record_length(src: Source) -> tuple[int, float]:
                 return 0, 0.0
             return int(h.sig_len or 0), float(h.fs or 0)
         if src.kind == "edf":
-            from .edf import contiguous_length
+            from prep.io.edf import contiguous_length
             return contiguous_length(src.path)
     except Exception:
         pass
@@ -241,7 +218,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
         raise RecordError(f"cannot read the WFDB record ({type(exc).__name__}: {exc}); check the "
                           "header and signal files", path=shown, stage="read") from None
     fs = float(rec.fs or 0)
-    _check_rate(fs, shown)
+    check_rate(fs, shown)
     sig = rec.p_signal
     if sig is None or sig.size == 0:
         raise RecordError("the record holds no samples", path=shown, stage="read")
@@ -353,7 +330,7 @@ def _check_header(base: Path, shown: str, warnings: list[str],
         if not declared == fs:
             raise RecordError(f"the header's frequency field {tokens[2]!r} is not a plain number "
                               f"(WFDB reads it as {fs:g} Hz); fix it", path=shown, stage="read")
-    _check_rate(fs, shown)
+    check_rate(fs, shown)
     if getattr(h, "n_seg", None):
         return None  # multi-segment records: wfdb checks their segments itself
     if h.sig_len is not None and h.sig_len > _MAX_SAMPLES:
@@ -439,7 +416,7 @@ def read_csv(path: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | No
     if not rate:
         raise RecordError("no sampling rate; pass --fs or write a sidecar "
                           f"{side.name} with {{\"fs\": <Hz>}}", path=shown, stage="read")
-    _check_rate(rate, shown)
+    check_rate(rate, shown)
     try:
         df = pd.read_csv(path)
     except Exception as exc:

@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .api import open_dataset
-from .reasons import FLAGS, REASONS
+from prep.dataset.view import open_dataset
+from prep.quality.reasons import FLAGS, REASONS
 
 # Paul Tol "bright" (colour-blind safe): blue, cyan, green, yellow, red, purple, grey
 TOL = ["#4477AA", "#66CCEE", "#228833", "#CCBB44", "#EE6677", "#AA3377", "#BBBBBB"]
@@ -102,8 +102,8 @@ def _class_means(ds) -> str:
 
 def _excluded_examples(ds, per_reason: int = 2) -> str:
     import matplotlib.pyplot as plt
-    from .config import ReadConfig
-    from .read import Source, read_source
+    from prep.config import ReadConfig
+    from prep.io.read import Source, read_source
     t = ds.table
     out = []
     seg = ds.manifest["config"]["segment"]

@@ -15,10 +15,10 @@ import math
 import numpy as np
 import pandas as pd
 
-from .config import Config
-from .model import StageLog
-from .pipeline import RecordResult, _empty_beats, _main_fault, safe_process
-from .read import Source, read_source, record_length, source_inputs
+from prep.config import Config
+from prep.model import StageLog
+from prep.pipeline.record import RecordResult, _empty_beats, _main_fault, safe_process
+from prep.io.read import Source, read_source, record_length, source_inputs
 
 
 def chunk_plan(n: int, fs: float, cfg: Config) -> list[tuple[int, int, int, int]]:

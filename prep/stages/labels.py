@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .model import Annotations
-from .read import BEAT_SYMBOLS
+from prep.model import Annotations
+from prep.model import BEAT_SYMBOLS
 
 
 def attach_labels(r: np.ndarray, ann: Annotations | None, fs: float, window_ms: float) -> np.ndarray:
@@ -45,7 +45,7 @@ def load_mapping(path: str | None) -> dict[str, str]:
     """Symbol -> class overrides from a TOML ([classes] table) or CSV (symbol,class) file."""
     from pathlib import Path
 
-    from .errors import ConfigError
+    from prep.errors import ConfigError
     if not path:
         return {}
     p = Path(path)

@@ -1,6 +1,6 @@
 """Benchmark: detection accuracy per record and speed against neurokit2, in one run.
 
-    python -m prep.bench [--ref ../shared/ref-ecg] [--repeat 3] [--noise] [--no-speed] [--no-yield]
+    python -m benchmarks.bench [--ref ../shared/ref-ecg] [--repeat 3] [--noise] [--no-speed] [--no-yield]
 
 Prints, per annotated record, sensitivity and positive predictivity of our fused detector
 (EC57-style matching, 150 ms, every beat), and the seconds our whole pipeline takes on all leads
@@ -35,10 +35,11 @@ from pathlib import Path  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from .config import Config  # noqa: E402
-from .evaluate import Score, match_beats  # noqa: E402
-from .pipeline import process_record  # noqa: E402
-from .read import BEAT_SYMBOLS, read_wfdb  # noqa: E402
+from prep.config import Config  # noqa: E402
+from prep.evaluate import Score, match_beats  # noqa: E402
+from prep.pipeline.record import process_record  # noqa: E402
+from prep.io.read import read_wfdb
+from prep.model import BEAT_SYMBOLS  # noqa: E402
 
 ACCURACY = [("mitdb", r) for r in ("100", "105", "119")] + \
            [("svdb", r) for r in ("800", "801", "802", "803", "804")] + \
@@ -48,11 +49,11 @@ SPEED = [("mitdb", r) for r in ("100", "105", "119")]
 
 def _stage_beats(r, cfg: Config) -> np.ndarray:
     """Fused beats of the R-peak stage alone on the filtered record (as the tests score it)."""
-    from .bandpass import bandpass
-    from .baseline import remove_baseline
-    from .pipeline import fill_gaps
-    from .powerline import remove_powerline
-    from .rpeaks import detect_beats
+    from prep.stages.bandpass import bandpass
+    from prep.stages.baseline import remove_baseline
+    from prep.pipeline.record import fill_gaps
+    from prep.stages.powerline import remove_powerline
+    from prep.stages.rpeaks import detect_beats
     x, _ = fill_gaps(r.signals)
     y, _ = remove_powerline(x, r.fs, cfg.powerline)
     y, _ = bandpass(y, r.fs, cfg.bandpass)
@@ -150,8 +151,8 @@ def record_yield(r, res) -> dict:
     one within 150 ms (EC57) to kept rows, to all rows and to ``is_beat`` rows. Reference beats
     inside stretches the annotator marked noisy in any lead are left out of the kept shares.
     """
-    from .evaluate import match_pairs
-    from .labels import beat_classes, noise_stretches
+    from prep.evaluate import match_pairs
+    from prep.stages.labels import beat_classes, noise_stretches
     a = r.annotations
     sel = np.isin(a.symbol, list(BEAT_SYMBOLS))
     order = np.argsort(a.sample[sel], kind="stable")
@@ -253,7 +254,7 @@ def add_noise(x: np.ndarray, fs: float, ref_beats: np.ndarray, noise: np.ndarray
 
 
 def noise_stress(ref: Path, cfg: Config) -> None:
-    from .model import Record
+    from prep.model import Record
 
     clean = [("mitdb", "100"), ("mitdb", "119")]
     kinds = ["em", "ma", "bw"]

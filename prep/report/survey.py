@@ -6,11 +6,11 @@ import re
 
 import pandas as pd
 
-from .config import Config
-from .errors import ConfigError
-from .pipeline import process_record
-from .read import find_sources, read_source
-from .errors import BeatmillError
+from prep.config import Config
+from prep.errors import ConfigError
+from prep.pipeline.record import process_record
+from prep.io.read import find_sources, read_source
+from prep.errors import BeatmillError
 
 _OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt}
 _RULE = re.compile(r"^\s*(?:(?P<lead>[^:<>=\s]+)\s*:)?\s*(?P<what>usable|good)\s*"

@@ -6,7 +6,7 @@ from fractions import Fraction
 import numpy as np
 from scipy import signal
 
-from .model import StageLog
+from prep.model import StageLog
 
 
 def cut_and_resample(x: np.ndarray, start: np.ndarray, end: np.ndarray, n_out: int, fs: float):

@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .config import SegmentConfig
-from .model import StageLog
+from prep.config import SegmentConfig
+from prep.model import StageLog
 
 
 def beat_windows(r: np.ndarray, fs: float, n_samples: int, gap: np.ndarray | None,

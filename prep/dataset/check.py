@@ -6,9 +6,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .export import MANIFEST, TABLE_FILES, TENSOR_FILES
-from .read import sha256_file
-from .pipeline import BEAT_COLUMNS
+from prep.dataset.export import MANIFEST, TABLE_FILES, TENSOR_FILES
+from prep.io._files import sha256_file
+from prep.pipeline.record import BEAT_COLUMNS
 
 
 def check_dataset(run_dir: str | Path) -> list[str]:
@@ -94,8 +94,8 @@ def check_dataset(run_dir: str | Path) -> list[str]:
 
 def _check_splits_and_labels(table, records, manifest: dict, n: int) -> list[str]:
     """No patient in two splits; split row ranges match the tensor; labels and classes valid."""
-    from .labels import beat_classes
-    from .split import SPLITS
+    from prep.stages.labels import beat_classes
+    from prep.dataset.split import SPLITS
 
     out: list[str] = []
     for name, t in (("beats.parquet", table), ("records.parquet", records)):

@@ -13,9 +13,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import RecordError
-from .leads import canonical_lead, classify_channel, scale_to_mv
-from .model import Annotations, Record
+from prep.errors import RecordError
+from prep.leads import canonical_lead, classify_channel, scale_to_mv
+from prep.model import Annotations, Record
 
 
 def _header(path: Path) -> dict:
@@ -174,7 +174,7 @@ def _edf_discontinuous(path: Path, h: dict, name, inputs) -> Record:
         inside = (samp >= 0) & (samp < total)
         ann = Annotations(samp[inside], sym[inside], aux=np.full(int(inside.sum()), "", object),
                           source=path.name)
-    from .read import sha256_file
+    from prep.io._files import sha256_file
     return Record(name=name or path.stem, fs=fs, signals=data,
                   lead_names=[h["labels"][i] for i in keep],
                   leads=[canonical_lead(h["labels"][i]) for i in keep], units=["mV"] * len(keep),
@@ -217,7 +217,7 @@ def _edf_contiguous(path: Path, h: dict, name, inputs, sampfrom: int = 0,
         ann = Annotations(samp[inside], sym[inside], aux=np.full(int(inside.sum()), "", object),
                           source=path.name)
     warnings: list[str] = []
-    from .read import sha256_file
+    from prep.io._files import sha256_file
     return Record(name=name or path.stem, fs=fs, signals=data,
                   lead_names=[labels[i] for i in keep], leads=[canonical_lead(labels[i]) for i in keep],
                   units=["mV"] * len(keep), inputs=inputs or [(path.name, sha256_file(path))],

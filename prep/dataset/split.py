@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import ConfigError
+from prep.errors import ConfigError
 
 SPLITS = ("train", "val", "test")
 

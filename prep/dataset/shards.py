@@ -20,8 +20,8 @@ import re
 import numpy as np
 import pandas as pd
 
-from .model import StageLog
-from .pipeline import RecordResult
+from prep.model import StageLog
+from prep.pipeline.record import RecordResult
 
 COMMIT = "COMMIT.json"
 _FILES = ("tensor.npy", "mask.npy", "beats.arrow", "leads.arrow", "windows.arrow",

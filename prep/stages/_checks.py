@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .errors import StageInputError
+from prep.errors import StageInputError
 
 
 def as_signal(x, fs: float, caller: str, *, min_samples: int = 1) -> np.ndarray:

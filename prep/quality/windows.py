@@ -26,7 +26,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .config import WindowsConfig
+from prep.config import WindowsConfig
 
 GRADES = ("good", "noisy", "unusable")
 #: rhythm finding -> the window index it reads (column ``rhythm_findings``; never part of the grade)

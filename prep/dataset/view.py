@@ -7,14 +7,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .config import Config
-from .dataset import Assembled, assemble, _resolve_extras
-from .errors import BeatmillError
-from .leads import canonical_lead, default_axis, resolve_axis
-from .model import Annotations, Record
-from .pipeline import safe_process
-from .read import _check_rate
-from .reasons import FLAGS, REASONS, group
+from prep.config import Config
+from prep.dataset.run import Assembled, assemble, _resolve_extras
+from prep.errors import BeatmillError
+from prep.leads import canonical_lead, default_axis, resolve_axis
+from prep.model import Annotations, Record
+from prep.pipeline.record import safe_process
+from prep.io._files import check_rate
+from prep.quality.reasons import FLAGS, REASONS, group
 
 # reason -> (score column, config section, config key) for explanations
 _EVIDENCE = {
@@ -75,7 +75,7 @@ def process(signals, fs: float, *, leads: list[str] | None = None, config: Confi
     axis = resolve_axis(cfg.leads.select) if cfg.leads.select else default_axis([canon])
     mapping, pmap, extra = _resolve_extras(cfg)
     def load() -> Record:
-        _check_rate(float(fs), f"<{name}>")
+        check_rate(float(fs), f"<{name}>")
         return rec
     res = safe_process(load, name, cfg, axis, mapping)
     return assemble([res], cfg, axis, [f"<{name}>"], [f"<{name}>"], mapping, pmap, extra)

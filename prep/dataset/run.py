@@ -14,19 +14,20 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .config import Config
-from .errors import ConfigError
-from .export import (MANIFEST, TABLE_FILES, TENSOR_FILES, NpyWriter, environment,
+from prep import __version__
+from prep.config import Config
+from prep.errors import ConfigError
+from prep.dataset.export import (MANIFEST, TABLE_FILES, TENSOR_FILES, NpyWriter, environment,
                      write_manifest, write_npy, write_parquet)
-from .leads import default_axis, resolve_axis
-from . import reasons as reasons_mod
-from .labels import AAMI_CLASSES, UNLABELED, load_mapping
-from .normalize import apply_stats, normalize
-from .pipeline import BEAT_COLUMNS, BEAT_TYPES, RecordResult, _empty_beats
-from .split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
-from .read import Source, find_sources, read_source, sha256_file, source_inputs
-from .shards import kept_summary, read_shard, write_shard
+from prep.leads import default_axis, resolve_axis
+from prep.quality import reasons as reasons_mod
+from prep.stages.labels import AAMI_CLASSES, UNLABELED, load_mapping
+from prep.stages.normalize import apply_stats, normalize
+from prep.pipeline.record import BEAT_COLUMNS, BEAT_TYPES, RecordResult, _empty_beats
+from prep.dataset.split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
+from prep.io._files import sha256_file
+from prep.io.read import Source, find_sources, read_source, source_inputs
+from prep.dataset.shards import kept_summary, read_shard, write_shard
 
 log = logging.getLogger("prep")
 
@@ -54,7 +55,7 @@ def _peek_leads(src: Source, cfg: Config) -> list[str] | None:
         try:
             import wfdb
 
-            from .leads import canonical_lead, classify_channel
+            from prep.leads import canonical_lead, classify_channel
             h = wfdb.rdheader(str(src.path))
             if not h.sig_name:  # a multi-segment header names no signal: read the record
                 return read_source(src, cfg.read).leads
@@ -205,7 +206,7 @@ def _inputs_or_empty(src: Source, cfg: Config) -> list:
 
 def _shard_task(args) -> str:
     """Process one record and write its shard (in a worker process or on a Dask worker)."""
-    from .chunks import process_source
+    from prep.pipeline.chunks import process_source
     from threadpoolctl import threadpool_limits
     src, cfg, axis, mapping, root, key, inputs = args
     # one BLAS thread per task: N worker processes then use N cores, not N x BLAS threads, and

@@ -14,21 +14,21 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from . import reasons as R
-from .bandpass import bandpass
-from .baseline import remove_baseline
-from .config import Config
-from .errors import BeatmillError, RecordError
-from .labels import attach_labels, beat_classes, noise_stretches, rhythm_at
-from .leads import match_lead
-from .model import Record, StageLog
-from .read import BEAT_SYMBOLS
-from .powerline import remove_powerline
-from .quality import hf_ratio, high_freq, lead_faults, qrs_match, template_corr, window_fraction
-from .resample import cut_and_resample
-from .rpeaks import detect_leads, fuse_leads
-from .windows import grade_codes, lead_windows
-from .segment import beat_windows
+from prep.quality import reasons as R
+from prep.stages.bandpass import bandpass
+from prep.stages.baseline import remove_baseline
+from prep.config import Config
+from prep.errors import BeatmillError, RecordError
+from prep.stages.labels import attach_labels, beat_classes, noise_stretches, rhythm_at
+from prep.leads import match_lead
+from prep.model import Record, StageLog
+from prep.model import BEAT_SYMBOLS
+from prep.stages.powerline import remove_powerline
+from prep.quality.scores import hf_ratio, high_freq, lead_faults, qrs_match, template_corr, window_fraction
+from prep.stages.resample import cut_and_resample
+from prep.stages.rpeaks import detect_leads, fuse_leads
+from prep.quality.windows import grade_codes, lead_windows
+from prep.stages.segment import beat_windows
 
 log = logging.getLogger("prep")
 
@@ -96,7 +96,7 @@ def process_record(rec: Record, cfg: Config, axis: list[str],
                    mapping: dict[str, str] | None = None) -> RecordResult:
     """Run every stage on one record. Raises :class:`RecordError` for record-level failures.
 
-    ``mapping``: symbol -> class overrides (see :func:`prep.labels.load_mapping`).
+    ``mapping``: symbol -> class overrides (see :func:`prep.stages.labels.load_mapping`).
     """
     fs = rec.fs
     n_ax = len(axis)
@@ -317,7 +317,7 @@ def class_yield(r: np.ndarray, included: np.ndarray, ann, fs: float, window_ms: 
     >>> class_yield(np.array([101, 402]), np.array([True, False]), a, 1000.0, 150)
     {'N': {'reference': 2, 'detected': 1, 'kept': 1}, 'V': {'reference': 1, 'detected': 1, 'kept': 0}}
     """
-    from .evaluate import match_pairs
+    from prep.evaluate import match_pairs
     if ann is None:
         return {}
     sel = np.isin(ann.symbol, list(BEAT_SYMBOLS))

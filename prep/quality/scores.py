@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import signal
 
-from .config import QualityConfig
+from prep.config import QualityConfig
 
 
 def _runs(mask: np.ndarray, min_len: int) -> np.ndarray:

@@ -10,10 +10,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import signal
 
-from ._checks import as_signal
-from ._design import warped_corner
-from .config import BandpassConfig
-from .model import StageLog
+from prep.stages._checks import as_signal
+from prep.stages._design import warped_corner
+from prep.config import BandpassConfig
+from prep.model import StageLog
 
 
 @dataclass(frozen=True)

@@ -6,9 +6,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import signal
 
-from ._checks import as_signal
-from .config import PowerlineConfig
-from .model import StageLog
+from prep.stages._checks import as_signal
+from prep.config import PowerlineConfig
+from prep.model import StageLog
 
 
 _MAX_SEGMENTS = 64  # spectrum segments used on long records (enough for a stable estimate)

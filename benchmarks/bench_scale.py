@@ -1,7 +1,7 @@
 """Scale benchmark: throughput with 1 and 2 workers, consolidation memory with 20 and 200
 records, and a 24-hour two-lead record.
 
-    python -m prep.bench_scale [--ref ../shared/ref-ecg] [--work /tmp/beatmill-scale] [--skip-24h]
+    python -m benchmarks.bench_scale [--ref ../shared/ref-ecg] [--work /tmp/beatmill-scale] [--skip-24h]
                                [--repeat 5]
 
 Throughput is measured on 20 and on 40 records. Records are copies of the 30-minute, two-lead,
@@ -30,7 +30,7 @@ from pathlib import Path
 
 CHILD = r"""
 import json, resource, sys, time
-from prep.dataset import run
+from prep.dataset.run import run
 t = time.perf_counter()
 s = run([sys.argv[1]], sys.argv[2], workers=int(sys.argv[3]))
 print(json.dumps({"seconds": time.perf_counter() - t, "beats": s.n_kept,
