@@ -7,7 +7,8 @@ from prep.config import SegmentConfig
 from prep.stages.labels import attach_labels
 from prep.model import Annotations
 from prep.stages.normalize import normalize
-from prep.quality.scores import clip_mask, flat_mask, template_corr
+from prep.quality.faults import clip_mask, flat_mask
+from prep.quality.scores import template_corr
 from prep.stages.resample import cut_and_resample
 from prep.stages.segment import beat_windows
 

@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 PKG = Path(__file__).resolve().parents[1] / "prep"
-CORE = {"prep", "prep.errors", "prep.model", "prep.config", "prep.leads", "prep.evaluate",
+CORE = {"prep", "prep.errors", "prep.model", "prep.config", "prep.leads", "prep.evaluate", "prep.schema",
         "prep.demo"}
 
 # subpackage (or top-level module) -> what its modules may import besides the core

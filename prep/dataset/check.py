@@ -8,7 +8,7 @@ import numpy as np
 
 from prep.dataset.export import MANIFEST, TABLE_FILES, TENSOR_FILES
 from prep.io._files import sha256_file
-from prep.pipeline.record import BEAT_COLUMNS
+from prep.schema import BEAT_COLUMNS
 
 
 def check_dataset(run_dir: str | Path) -> list[str]:

@@ -23,7 +23,8 @@ from prep.leads import default_axis, resolve_axis
 from prep.quality import reasons as reasons_mod
 from prep.stages.labels import AAMI_CLASSES, UNLABELED, load_mapping
 from prep.stages.normalize import apply_stats, normalize
-from prep.pipeline.record import BEAT_COLUMNS, BEAT_TYPES, RecordResult, _empty_beats
+from prep.pipeline.record import RecordResult
+from prep.schema import BEAT_COLUMNS, BEAT_TYPES, empty_beats
 from prep.dataset.split import SPLITS, assign_patients, fixed_assignment, load_patient_map, patient_of
 from prep.io._files import sha256_file
 from prep.io.read import Source, find_sources, read_source, source_inputs
@@ -665,7 +666,7 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], given: l
         if w is not None:
             sink_w.add(w)
         del t, w
-    empty_b = _empty_beats()
+    empty_b = empty_beats()
     empty_b["patient"], empty_b["split"] = pd.Series(dtype="str"), pd.Series(dtype="str")
     beats = sink_b.finish(empty_b)
     windows = sink_w.finish(pd.DataFrame({c: pd.Series(dtype="float64") for c in

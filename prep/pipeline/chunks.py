@@ -17,7 +17,9 @@ import pandas as pd
 
 from prep.config import Config
 from prep.model import StageLog
-from prep.pipeline.record import RecordResult, _empty_beats, _main_fault, safe_process
+from prep.pipeline.record import RecordResult, safe_process
+from prep.quality.windows import main_fault
+from prep.schema import empty_beats
 from prep.io.read import Source, read_source, record_length, source_inputs
 
 
@@ -87,7 +89,7 @@ def merge_chunks(src: Source, parts, n: int, fs: float, cfg: Config) -> RecordRe
         tensors.append(res.tensor)
         masks.append(np.asarray(res.mask))
         beats.append(res.beats)
-    b = pd.concat(beats, ignore_index=True) if beats else _empty_beats()
+    b = pd.concat(beats, ignore_index=True) if beats else empty_beats()
     b["r_time_s"] = b["r_sample"] / fs
     b["beat_id"] = [f"{src.name}:{int(s)}" for s in b["r_sample"]]
     ti = np.full(len(b), -1, np.int64)
@@ -149,6 +151,6 @@ def _merge_leads(lead_lists, core_lengths, windows) -> list[dict]:
             r["windows_noisy"] = int(counts.get("noisy", 0))
             r["windows_unusable"] = int(counts.get("unusable", 0))
             r["usable_share"] = float((w["grade"] != "unusable").mean()) if len(w) else 0.0
-            r["main_fault"] = _main_fault(w)
+            r["main_fault"] = main_fault(w)
         out.append(r)
     return out

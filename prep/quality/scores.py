@@ -1,80 +1,14 @@
-"""Noise scoring, first version: lead faults (flat, clipped) and per-beat scores.
-
-Per beat: correlation with the running median beat (``template_corr``), high-frequency residual
-over amplitude (``hf_ratio``) and the fraction of flat or clipped samples in the window
-(``bad_fraction``). Thresholds are in :class:`prep.config.QualityConfig`.
+"""Per-beat scores: correlation with the running median beat (``template_corr``), the
+high-frequency residual over amplitude (``hf_ratio``), the QRS match against the record's clean
+beats (``qrs_match``), amplitude outliers and agreement with the second detector. Thresholds
+are in :class:`prep.config.QualityConfig`; the rules that read them: :mod:`prep.quality.rules`.
 """
 from __future__ import annotations
 
 import numpy as np
 from scipy import signal
 
-from prep.config import QualityConfig
-
-
-def _runs(mask: np.ndarray, min_len: int) -> np.ndarray:
-    """Keep only True runs of at least ``min_len`` samples (1-D)."""
-    if mask.size == 0 or min_len <= 1:
-        return mask.copy()
-    d = np.diff(np.r_[0, mask.astype(np.int8), 0])
-    starts, ends = np.flatnonzero(d == 1), np.flatnonzero(d == -1)
-    long = (ends - starts) >= min_len
-    out = np.zeros(mask.size + 1, np.int32)
-    np.add.at(out, starts[long], 1)
-    np.add.at(out, ends[long], -1)
-    return np.cumsum(out[:-1]) > 0
-
-
-def flat_mask(x: np.ndarray, fs: float, flat_ms: float) -> np.ndarray:
-    """True on runs of identical consecutive samples lasting at least ``flat_ms`` (1-D lead).
-
-    >>> x = np.r_[np.sin(np.arange(100.0)), np.zeros(100), np.sin(np.arange(1.0, 101.0))]
-    >>> int(flat_mask(x, 100.0, 500).sum())
-    100
-    """
-    same = np.r_[False, np.diff(x) == 0]
-    same[:-1] |= same[1:]  # the first sample of a run belongs to it
-    return _runs(same, max(2, int(round(flat_ms * fs / 1000))))
-
-
-def clip_mask(x: np.ndarray, run: int) -> np.ndarray:
-    """True on runs of at least ``run`` samples sitting at the lead's maximum or minimum value."""
-    if x.size == 0:
-        return np.zeros(0, bool)
-    hi, lo = np.max(x), np.min(x)
-    if hi == lo:
-        return np.zeros(x.size, bool)  # a constant lead is flat, not clipped
-    return _runs(x >= hi, run) | _runs(x <= lo, run)
-
-
-def lead_faults(raw: np.ndarray, fs: float, cfg: QualityConfig, gap: np.ndarray):
-    """Per-lead fault masks and summary. ``raw``: (n_leads, n_samples), gaps already filled.
-
-    Returns ``bad`` (n_leads, n_samples) True where flat, clipped or missing, the separate masks
-    per lead (``{"flat", "clipped", "missing"}``), and one dict per lead with the fractions.
-    """
-    bad = np.zeros(raw.shape, bool)
-    summary, masks = [], []
-    for j in range(raw.shape[0]):
-        gj = gap[j]
-        fl = flat_mask(np.where(gj, np.nan, raw[j]), fs, cfg.flat_ms) & ~gj
-        cl = clip_mask(raw[j][~gj], cfg.clip_run_samples) if (~gj).any() else np.zeros(0, bool)
-        clipped = np.zeros(raw.shape[1], bool)
-        clipped[~gj] = cl
-        clipped &= ~fl
-        bad[j] = fl | clipped | gj
-        masks.append({"flat": fl, "clipped": clipped, "missing": gj})
-        summary.append({"flat_fraction": float(fl.mean()), "clipped_fraction": float(clipped.mean()),
-                        "missing_fraction": float(gj.mean()),
-                        "usable_fraction": float(1 - bad[j].mean())})
-    return bad, masks, summary
-
-
-def window_fraction(mask: np.ndarray, start: np.ndarray, end: np.ndarray) -> np.ndarray:
-    """Fraction of each window [start, end) that is True, for every lead: (n_beats, n_leads)."""
-    csum = np.concatenate([np.zeros((mask.shape[0], 1)), np.cumsum(mask, axis=1)], axis=1)
-    s, e = np.clip(start, 0, mask.shape[1]), np.clip(end, 0, mask.shape[1])
-    return ((csum[:, e] - csum[:, s]) / np.maximum(e - s, 1)).T
+from prep.quality.faults import window_fraction
 
 
 def high_freq(x: np.ndarray, fs: float) -> tuple[np.ndarray, float]:
@@ -173,4 +107,65 @@ def qrs_match(y: np.ndarray, r: np.ndarray, usable: np.ndarray, library: np.ndar
             own = self_of[i] >= 0
             C[np.flatnonzero(own), self_of[i][own]] = -np.inf
             out[i] = np.partition(C, C.shape[1] - k, axis=1)[:, C.shape[1] - k]
+    return out
+
+
+def masked_median(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """Median over the leads a beat keeps, (n_beats, n_leads) -> (n_beats,); NaN with none.
+
+    >>> masked_median(np.array([[1.0, 3.0], [2.0, 9.0]]), np.array([[True, True], [True, False]]))
+    array([2., 2.])
+    """
+    w = np.where(mask, v, np.nan)
+    ok = mask.any(axis=1)
+    out = np.full(v.shape[0], np.nan)
+    if ok.any():
+        out[ok] = np.nanmedian(w[ok], axis=1)
+    return out
+
+
+def detector_agreement(r: np.ndarray, other: dict[int, np.ndarray], usable: np.ndarray,
+                       fs: float, tol_s: float = 0.15) -> np.ndarray:
+    """True where the second detector found a beat within ``tol_s`` of R in a usable lead.
+
+    ``other``: lead index -> the second detector's sorted R samples in that lead.
+
+    >>> detector_agreement(np.array([100, 300]), {0: np.array([105, 900])}, np.array([True]),
+    ...                    1000.0)
+    array([ True, False])
+    """
+    tol = tol_s * fs
+    agree = np.zeros(r.size, bool)
+    for j, p in other.items():
+        if usable[j] and p.size:
+            k = np.clip(np.searchsorted(p, r), 1, p.size - 1) if p.size > 1 else np.zeros(r.size, int)
+            d = np.minimum(np.abs(p[np.maximum(k - 1, 0)] - r), np.abs(p[k] - r))
+            agree |= d <= tol
+    return agree
+
+
+def cut_beat_scores(beats_mv: np.ndarray, mask: np.ndarray, hf: np.ndarray, bad: np.ndarray,
+                    start: np.ndarray, end: np.ndarray, n_template: int) -> dict[str, np.ndarray]:
+    """The scores of the cut beats, each over the leads the beat keeps.
+
+    ``beats_mv`` (n, n_axis, n_samples) with masked leads zeroed; ``mask`` (n, n_axis);
+    ``hf``: the high-frequency part of the axis leads (:func:`high_freq`); ``bad``: their
+    flat/clipped/missing masks; ``start``/``end``: the beats' windows. Returns
+    ``template_corr``, ``hf_ratio`` (medians over kept leads), ``bad_fraction`` (the worst kept
+    lead) and ``amplitude_z`` (robust z-score of the log peak-to-peak amplitude in the record,
+    MAD floored at 0.1; NaN with fewer than three beats).
+    """
+    any_lead = mask.any(axis=1)
+    badf = window_fraction(bad, start, end)
+    out = {"template_corr": masked_median(template_corr(beats_mv, n_template), mask),
+           "hf_ratio": masked_median(hf_ratio(hf, beats_mv, start, end), mask),
+           "bad_fraction": np.where(any_lead, np.max(np.where(mask, badf, 0.0), axis=1), np.nan),
+           "amplitude_z": np.full(mask.shape[0], np.nan)}
+    ptp = beats_mv.max(axis=2) - beats_mv.min(axis=2)
+    la = np.log(np.maximum(masked_median(ptp, mask), 1e-6))
+    ok = np.isfinite(la)
+    if ok.sum() >= 3:
+        med = np.median(la[ok])
+        mad = 1.4826 * np.median(np.abs(la[ok] - med))
+        out["amplitude_z"] = np.abs(la - med) / max(mad, 0.1)
     return out

@@ -311,3 +311,22 @@ def grade_windows(df: pd.DataFrame, cfg: WindowsConfig) -> tuple[list[str], list
 def grade_codes(grades) -> np.ndarray:
     """good/noisy/unusable as 0/1/2."""
     return np.array([GRADES.index(g) for g in grades], dtype=np.int8)
+
+
+_FAULT_ORDER = ["fault_fraction", "amplitude_mv", "bsqi", "tsqi", "ksqi", "bassqi", "psqi",
+                "hf_ratio", "line_ratio", "hr_bpm", "max_rr_s", "rr_ratio"]
+
+
+def main_fault(w: pd.DataFrame) -> str:
+    """The test that most often decided a lead's non-good windows ('' when all good); ties go to
+    the more direct test, and a fault share is named by its kind (flat, clipped, missing)."""
+    bad = w[w["grade"] != "good"]
+    parts = [p for cell in bad["decided_by"] for p in cell.split(";") if p]
+    if not parts:
+        return ""
+    rank = {k: i for i, k in enumerate(_FAULT_ORDER)}
+    top = min(set(parts), key=lambda k: (-parts.count(k), rank.get(k, 99)))
+    if top == "fault_fraction":
+        kinds = {k: float(bad[f"{k}_fraction"].sum()) for k in ("flat", "clipped", "missing")}
+        return max(kinds, key=kinds.get)
+    return top

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from prep.evaluate import match_pairs
 from prep.model import Annotations
 from prep.model import BEAT_SYMBOLS
 
@@ -121,3 +122,31 @@ def noise_stretches(ann: Annotations | None, n_samples: int, channels: list[int]
             if st < 0 or (ch < 4 and flags & (1 << ch)):
                 out[j, a:b] = True
     return out
+
+
+def class_yield(r: np.ndarray, included: np.ndarray, ann, fs: float, window_ms: float,
+                mapping: dict[str, str] | None = None) -> dict[str, dict[str, int]]:
+    """Per reference class: reference beats, those a row was found for, and those kept.
+
+    Reference beats and rows are matched one to one within ``window_ms`` (the EC57 walk of
+    :func:`prep.evaluate.match_pairs`), so a reference beat is counted once whatever labels
+    the rows got. Empty where the record has no reference beat annotations.
+
+    >>> from prep.model import Annotations
+    >>> a = Annotations(np.array([100, 400, 700]), np.array(["N", "V", "N"], dtype=object))
+    >>> class_yield(np.array([101, 402]), np.array([True, False]), a, 1000.0, 150)
+    {'N': {'reference': 2, 'detected': 1, 'kept': 1}, 'V': {'reference': 1, 'detected': 1, 'kept': 0}}
+    """
+    if ann is None:
+        return {}
+    sel = np.isin(ann.symbol, list(BEAT_SYMBOLS))
+    if not sel.any():
+        return {}
+    order = np.argsort(ann.sample[sel], kind="stable")
+    ref, sym = ann.sample[sel][order], ann.symbol[sel][order]
+    cls = beat_classes(sym, mapping).astype(str)
+    _, ref_to_row = match_pairs(r, ref, fs, window_ms)
+    found = ref_to_row >= 0
+    kept = found & included[np.maximum(ref_to_row, 0)]
+    return {str(c): {"reference": int((cls == c).sum()), "detected": int((found & (cls == c)).sum()),
+                "kept": int((kept & (cls == c)).sum())} for c in sorted(set(cls))}

@@ -1,0 +1,86 @@
+"""Lead faults on the raw signal: flat (lead-off), clipped and missing samples, per lead and
+per beat window. Thresholds are in :class:`prep.config.QualityConfig`.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from prep.config import QualityConfig
+
+
+def _runs(mask: np.ndarray, min_len: int) -> np.ndarray:
+    """Keep only True runs of at least ``min_len`` samples (1-D)."""
+    if mask.size == 0 or min_len <= 1:
+        return mask.copy()
+    d = np.diff(np.r_[0, mask.astype(np.int8), 0])
+    starts, ends = np.flatnonzero(d == 1), np.flatnonzero(d == -1)
+    long = (ends - starts) >= min_len
+    out = np.zeros(mask.size + 1, np.int32)
+    np.add.at(out, starts[long], 1)
+    np.add.at(out, ends[long], -1)
+    return np.cumsum(out[:-1]) > 0
+
+
+def flat_mask(x: np.ndarray, fs: float, flat_ms: float) -> np.ndarray:
+    """True on runs of identical consecutive samples lasting at least ``flat_ms`` (1-D lead).
+
+    >>> x = np.r_[np.sin(np.arange(100.0)), np.zeros(100), np.sin(np.arange(1.0, 101.0))]
+    >>> int(flat_mask(x, 100.0, 500).sum())
+    100
+    """
+    same = np.r_[False, np.diff(x) == 0]
+    same[:-1] |= same[1:]  # the first sample of a run belongs to it
+    return _runs(same, max(2, int(round(flat_ms * fs / 1000))))
+
+
+def clip_mask(x: np.ndarray, run: int) -> np.ndarray:
+    """True on runs of at least ``run`` samples sitting at the lead's maximum or minimum value."""
+    if x.size == 0:
+        return np.zeros(0, bool)
+    hi, lo = np.max(x), np.min(x)
+    if hi == lo:
+        return np.zeros(x.size, bool)  # a constant lead is flat, not clipped
+    return _runs(x >= hi, run) | _runs(x <= lo, run)
+
+
+def lead_faults(raw: np.ndarray, fs: float, cfg: QualityConfig, gap: np.ndarray):
+    """Per-lead fault masks and summary. ``raw``: (n_leads, n_samples), gaps already filled.
+
+    Returns ``bad`` (n_leads, n_samples) True where flat, clipped or missing, the separate masks
+    per lead (``{"flat", "clipped", "missing"}``), and one dict per lead with the fractions.
+    """
+    bad = np.zeros(raw.shape, bool)
+    summary, masks = [], []
+    for j in range(raw.shape[0]):
+        gj = gap[j]
+        fl = flat_mask(np.where(gj, np.nan, raw[j]), fs, cfg.flat_ms) & ~gj
+        cl = clip_mask(raw[j][~gj], cfg.clip_run_samples) if (~gj).any() else np.zeros(0, bool)
+        clipped = np.zeros(raw.shape[1], bool)
+        clipped[~gj] = cl
+        clipped &= ~fl
+        bad[j] = fl | clipped | gj
+        masks.append({"flat": fl, "clipped": clipped, "missing": gj})
+        summary.append({"flat_fraction": float(fl.mean()), "clipped_fraction": float(clipped.mean()),
+                        "missing_fraction": float(gj.mean()),
+                        "usable_fraction": float(1 - bad[j].mean())})
+    return bad, masks, summary
+
+
+def window_fraction(mask: np.ndarray, start: np.ndarray, end: np.ndarray) -> np.ndarray:
+    """Fraction of each window [start, end) that is True, for every lead: (n_beats, n_leads)."""
+    csum = np.concatenate([np.zeros((mask.shape[0], 1)), np.cumsum(mask, axis=1)], axis=1)
+    s, e = np.clip(start, 0, mask.shape[1]), np.clip(end, 0, mask.shape[1])
+    return ((csum[:, e] - csum[:, s]) / np.maximum(e - s, 1)).T
+
+
+def fault_reason(f: dict) -> str:
+    """Why a lead is rejected for its faults, from one :func:`lead_faults` summary.
+
+    >>> fault_reason({"flat_fraction": 0.7, "clipped_fraction": 0.0, "missing_fraction": 0.0,
+    ...               "usable_fraction": 0.3})
+    'only 30% usable; mostly flat (lead-off) (70%)'
+    """
+    parts = [(f["flat_fraction"], "flat (lead-off)"), (f["clipped_fraction"], "clipped"),
+             (f["missing_fraction"], "missing samples")]
+    share, what = max(parts)
+    return f"only {f['usable_fraction']:.0%} usable; mostly {what} ({share:.0%})"
