@@ -3,6 +3,10 @@
     python benchmarks/same_bytes.py --write before.json      # on the old code
     python benchmarks/same_bytes.py --compare before.json    # on the new code: exit 1 on a change
 
+The manifest holds input paths, so run both sides from this checkout's script and point
+``PYTHONPATH`` at the old code for ``--write`` (for example a ``git worktree`` of the old commit):
+``PYTHONPATH=../old python benchmarks/same_bytes.py --write before.json``.
+
 Runs ``beatmill``'s :func:`prep.run` on demo_records and on records of ../shared/ref-ecg
 (MIT-BIH 100 and 119, Supraventricular 800, LUDB 1, PTB s0010_re, Challenge 2015 v102s; those
 absent are skipped), one dataset each, and records the SHA-256 of every file in each dataset

@@ -31,3 +31,7 @@ class RecordError(BeatmillError):
 
 class StageInputError(BeatmillError, ValueError):
     """A stage received input it cannot work on (wrong shape, non-finite values, too short)."""
+
+
+#: Exit codes shared by every command (README: "Exit codes").
+EXIT_OK, EXIT_SOME_FAILED, EXIT_USAGE, EXIT_NONE_USABLE = 0, 1, 2, 3

@@ -4,11 +4,11 @@ import pytest
 from scipy import signal
 
 from prep.config import SegmentConfig
-from prep.stages.labels import attach_labels
 from prep.model import Annotations
-from prep.stages.normalize import normalize
 from prep.quality.faults import clip_mask, flat_mask
 from prep.quality.scores import template_corr
+from prep.stages.labels import attach_labels
+from prep.stages.normalize import normalize
 from prep.stages.resample import cut_and_resample
 from prep.stages.segment import beat_windows
 

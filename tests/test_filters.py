@@ -3,9 +3,9 @@ import numpy as np
 import pytest
 from scipy import signal
 
+from prep.config import BandpassConfig, BaselineConfig, PowerlineConfig
 from prep.stages.bandpass import bandpass, design_bandpass
 from prep.stages.baseline import median_baseline, remove_baseline
-from prep.config import BandpassConfig, BaselineConfig, PowerlineConfig
 from prep.stages.powerline import design_notches, remove_powerline
 
 

@@ -12,9 +12,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import prep
-from prep.dataset.check import check_dataset
 from prep.config import Config
-from prep.dataset.run import EXIT_SOME_FAILED, run
+from prep.dataset.check import check_dataset
+from prep.dataset.run import run
+from prep.errors import EXIT_SOME_FAILED
 
 from .conftest import DEMO
 
@@ -195,7 +196,7 @@ def test_out_of_space_leaves_previous_state_intact(demo_run, tmp_path, monkeypat
     target = tmp_path / "ds"
     shutil.copytree(out, target)
     before = {f.name: f.read_bytes() for f in target.iterdir() if f.is_file()}
-    import prep.dataset.run as D
+    import prep.dataset.assemble as D
 
     def full(*a, **k):
         raise OSError(errno.ENOSPC, "No space left on device", str(target / "beats.parquet"))

@@ -7,13 +7,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from prep.dataset.check import check_dataset
 from prep.config import Config
+from prep.dataset.check import check_dataset
 from prep.dataset.run import run
-from prep.stages.labels import AAMI_CLASSES, beat_classes, load_mapping, noise_stretches, rhythm_at
-from prep.model import Annotations
-from prep.model import BEAT_SYMBOLS
 from prep.dataset.split import SPLITS, assign_patients, fixed_assignment, patient_of
+from prep.model import BEAT_SYMBOLS, Annotations
+from prep.stages.labels import AAMI_CLASSES, beat_classes, load_mapping, noise_stretches, rhythm_at
 
 from .conftest import DEMO, ref_path
 
@@ -140,6 +139,7 @@ def test_same_seed_same_split_and_check_catches_leakage(demo_run, tmp_path):
     assert a.equals(b)
     # forge a leak: give two records of different splits the same patient, re-hash, check
     import shutil
+
     from prep.dataset.export import write_parquet
     from prep.io._files import sha256_file as sha256_path
     bad = tmp_path / "leak"

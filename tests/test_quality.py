@@ -170,8 +170,7 @@ def test_electrode_motion_noise_false_beats_are_not_kept(snr):
 
     from benchmarks.bench import add_noise
     from prep.evaluate import match_beats
-    from prep.model import BEAT_SYMBOLS
-    from prep.model import Record
+    from prep.model import BEAT_SYMBOLS, Record
     from prep.pipeline.record import process_record
     em = wfdb.rdrecord(str(ref_path("nstdb", "em"))).p_signal.T
     n_ref = n_tp = n_kept = n_fp = 0

@@ -2,13 +2,13 @@
 import numpy as np
 import pytest
 
-from prep.stages.bandpass import bandpass
-from prep.stages.baseline import remove_baseline
 from prep.config import RpeaksConfig
 from prep.evaluate import match_beats
-from prep.stages.powerline import remove_powerline
 from prep.io.read import read_wfdb
 from prep.model import BEAT_SYMBOLS
+from prep.stages.bandpass import bandpass
+from prep.stages.baseline import remove_baseline
+from prep.stages.powerline import remove_powerline
 from prep.stages.rpeaks import detect_beats, detect_lead, refine_r
 
 from .conftest import ref_path

@@ -10,8 +10,8 @@ import time
 import pytest
 
 from prep.dataset.check import check_dataset
-from prep.dataset.run import run
 from prep.dataset.export import TABLE_FILES, TENSOR_FILES
+from prep.dataset.run import run
 
 from .conftest import DEMO, ROOT
 
@@ -96,12 +96,14 @@ def test_dask_local_cluster_two_workers(demo_run, tmp_path):
 @pytest.mark.refdata
 def test_chunked_and_unchunked_runs_agree():
     # MIT-BIH 100 (30 min) in 5-minute chunks against one piece
-    import numpy as np
     from pathlib import Path
 
-    from prep.pipeline.chunks import chunk_plan, process_source
+    import numpy as np
+
     from prep.config import Config
     from prep.io.read import Source
+    from prep.pipeline.chunks import chunk_plan, process_source
+
     from .conftest import ref_path
     base = ref_path("mitdb", "100")
     src = Source("wfdb", Path(base), "100")
@@ -128,7 +130,7 @@ def test_robust_dataset_statistics_exact_without_holding_values(monkeypatch):
     # The interval narrowing is forced to run several passes by a tiny exact-gather limit.
     import numpy as np
 
-    from prep.dataset import run as ds
+    from prep.dataset import stats as ds
     monkeypatch.setattr(ds, "_EXACT", 40)
     rng = np.random.default_rng(7)
     batches = []
@@ -149,10 +151,10 @@ def test_streamed_table_rows_equal_one_concatenated_table(tmp_path):
     # Reference: pandas.concat of the same frames, written by pyarrow in one go.
     import pandas as pd
 
-    from prep.dataset.run import _ParquetRows
+    from prep.dataset.sinks import ParquetRows
     frames = [pd.DataFrame({"a": [i, i + 1], "b": [f"x{i}", None], "c": [0.5 * i, None]})
               for i in range(7)] + [pd.DataFrame({"a": [], "b": [], "c": []})]
-    sink = _ParquetRows(tmp_path / "t.parquet", group=3)  # several row groups
+    sink = ParquetRows(tmp_path / "t.parquet", group=3)  # several row groups
     for f in frames:
         sink.add(f)
     sink.finish(frames[-1])
@@ -168,11 +170,12 @@ def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
     # storage, and the dataset it assembles matches one assembled from in-memory tables.
     import pandas as pd
 
-    from prep.dataset.view import open_dataset
     from prep.config import Config
-    from prep.dataset.run import _resolve_extras, assemble
-    from prep.io.read import find_sources
+    from prep.dataset.assemble import assemble
+    from prep.dataset.run import resolve_extras
     from prep.dataset.shards import read_shard
+    from prep.dataset.view import open_dataset
+    from prep.io.read import find_sources
     out, _ = demo_run
     root = out / ".shards"
     man = json.loads((out / "manifest.json").read_text())
@@ -187,7 +190,7 @@ def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
     assert all(r.beats is None and r.windows is None for r in lazy)
     assert [r.n_beats for r in lazy] == [r.n_beats for r in full]
     cfg = Config()
-    mapping, pmap, extra = _resolve_extras(cfg)
+    mapping, pmap, extra = resolve_extras(cfg)
     args = (cfg, man["lead_axis"], [], [], mapping, pmap, extra)
     a = assemble(full, *args)
     ds = open_dataset(out)
@@ -213,7 +216,7 @@ def test_kept_summary_and_rule_shortcut_agree_with_the_rules():
     import numpy as np
     import pandas as pd
 
-    from prep.dataset.run import _rule_reasons, _rules_apply
+    from prep.dataset.assemble import rule_reasons, rules_apply
     from prep.dataset.shards import kept_summary
     b = pd.DataFrame({"included": [True, False, True, True], "class": ["N", "V", None, "V"],
                       "r_sample": [10, 20, 30, 40], "tensor_index": [0, -1, 1, 2]})
@@ -225,8 +228,8 @@ def test_kept_summary_and_rule_shortcut_agree_with_the_rules():
     for split in ("", "train", "val", "test"):
         for fixed in (False, True):
             for tc in (set(), {"N"}):
-                extra = _rule_reasons(b, split, fixed, tc)
-                if not _rules_apply(split, fixed, tc):  # the shortcut skips no exclusion
+                extra = rule_reasons(b, split, fixed, tc)
+                if not rules_apply(split, fixed, tc):  # the shortcut skips no exclusion
                     assert (extra == "").all()
                 assert np.isin(extra, ["", "not_in_split_lists", "not_train_class"]).all()
 
@@ -238,9 +241,10 @@ def test_edf_record_in_chunks_agrees_with_one_piece(tmp_path):
     pyedflib = pytest.importorskip("pyedflib")
     import wfdb
 
-    from prep.pipeline.chunks import process_source
     from prep.config import Config
     from prep.io.read import Source, record_length
+    from prep.pipeline.chunks import process_source
+
     from .conftest import ref_path
     n = 12 * 60 * 360
     r = wfdb.rdrecord(str(ref_path("mitdb", "100")), sampto=n)

@@ -2,9 +2,9 @@
 import numpy as np
 import pytest
 
+from prep.errors import StageInputError
 from prep.stages.bandpass import bandpass
 from prep.stages.baseline import remove_baseline
-from prep.errors import StageInputError
 from prep.stages.powerline import remove_powerline
 from prep.stages.rpeaks import detect_beats
 

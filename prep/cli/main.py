@@ -289,9 +289,9 @@ def leads(inputs: List[str] = typer.Argument(..., help="Records or folders to su
 
       beatmill leads demo_records --require usable>=0.9
     """
-    from prep.report.survey import check_rules, parse_rule, survey
     from prep.config import Config
     from prep.errors import ConfigError
+    from prep.report.survey import check_rules, parse_rule, survey
 
     try:
         cfg = Config.from_toml(config) if config else Config()

@@ -94,8 +94,8 @@ def check_dataset(run_dir: str | Path) -> list[str]:
 
 def _check_splits_and_labels(table, records, manifest: dict, n: int) -> list[str]:
     """No patient in two splits; split row ranges match the tensor; labels and classes valid."""
-    from prep.stages.labels import beat_classes
     from prep.dataset.split import SPLITS
+    from prep.stages.labels import beat_classes
 
     out: list[str] = []
     for name, t in (("beats.parquet", table), ("records.parquet", records)):

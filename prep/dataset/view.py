@@ -8,12 +8,13 @@ import numpy as np
 import pandas as pd
 
 from prep.config import Config
-from prep.dataset.run import Assembled, assemble, _resolve_extras
+from prep.dataset.assemble import Assembled, assemble
+from prep.dataset.run import resolve_extras
 from prep.errors import BeatmillError
+from prep.io._files import check_rate
 from prep.leads import canonical_lead, default_axis, resolve_axis
 from prep.model import Annotations, Record
 from prep.pipeline.record import safe_process
-from prep.io._files import check_rate
 from prep.quality.reasons import FLAGS, REASONS, group
 
 # reason -> (score column, config section, config key) for explanations
@@ -73,7 +74,7 @@ def process(signals, fs: float, *, leads: list[str] | None = None, config: Confi
                  units=["mV"] * len(names), annotations=annotations, path=f"<{name}>",
                  channels=list(range(len(names))))
     axis = resolve_axis(cfg.leads.select) if cfg.leads.select else default_axis([canon])
-    mapping, pmap, extra = _resolve_extras(cfg)
+    mapping, pmap, extra = resolve_extras(cfg)
     def load() -> Record:
         check_rate(float(fs), f"<{name}>")
         return rec

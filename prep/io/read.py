@@ -14,9 +14,10 @@ import numpy as np
 
 from prep.config import ReadConfig
 from prep.errors import RecordError
-from prep.leads import canonical_lead, classify_channel, scale_to_mv
 from prep.io._files import check_rate, sha256_file
+from prep.leads import canonical_lead, classify_channel, scale_to_mv
 from prep.model import Annotations, Record
+
 
 @dataclass(frozen=True)
 class Source:

@@ -16,11 +16,11 @@ import numpy as np
 import pandas as pd
 
 from prep.config import Config
+from prep.io.read import Source, read_source, record_length, source_inputs
 from prep.model import StageLog
 from prep.pipeline.record import RecordResult, safe_process
 from prep.quality.windows import main_fault
 from prep.schema import empty_beats
-from prep.io.read import Source, read_source, record_length, source_inputs
 
 
 def chunk_plan(n: int, fs: float, cfg: Config) -> list[tuple[int, int, int, int]]:

@@ -35,8 +35,7 @@ from prep.quality.windows import grade_codes, lead_windows, main_fault
 from prep.schema import empty_beats
 from prep.stages.bandpass import bandpass
 from prep.stages.baseline import remove_baseline
-from prep.stages.labels import (attach_labels, beat_classes, class_yield, noise_stretches,
-                                rhythm_at)
+from prep.stages.labels import attach_labels, beat_classes, class_yield, noise_stretches, rhythm_at
 from prep.stages.powerline import remove_powerline
 from prep.stages.resample import cut_and_resample
 from prep.stages.rpeaks import detect_leads, fuse_leads
@@ -464,6 +463,7 @@ def second_detector(x: np.ndarray, fs: float) -> np.ndarray:
     import warnings
 
     import neurokit2 as nk
+
     # the lead is already band-limited to 40 Hz, so keeping every q-th sample down to >= 90 Hz
     # does not alias it; the peer detector then runs q times faster (R within +-q samples)
     q = max(1, int(fs // 90))

@@ -17,8 +17,8 @@ def plot_beat_context(ds, beat_id: str, out: str | Path, seconds: float = 3.0) -
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from prep.io.read import Source, read_source
     from prep.config import ReadConfig
+    from prep.io.read import Source, read_source
 
     info = ds.explain(beat_id)
     rec_name = info["record"]

@@ -102,6 +102,7 @@ def _class_means(ds) -> str:
 
 def _excluded_examples(ds, per_reason: int = 2) -> str:
     import matplotlib.pyplot as plt
+
     from prep.config import ReadConfig
     from prep.io.read import Source, read_source
     t = ds.table

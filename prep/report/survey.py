@@ -7,10 +7,9 @@ import re
 import pandas as pd
 
 from prep.config import Config
-from prep.errors import ConfigError
-from prep.pipeline.record import process_record
+from prep.errors import BeatmillError, ConfigError
 from prep.io.read import find_sources, read_source
-from prep.errors import BeatmillError
+from prep.pipeline.record import process_record
 
 _OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt}
 _RULE = re.compile(r"^\s*(?:(?P<lead>[^:<>=\s]+)\s*:)?\s*(?P<what>usable|good)\s*"

@@ -10,10 +10,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import signal
 
-from prep.stages._checks import as_signal
-from prep.stages._design import warped_corner
 from prep.config import BandpassConfig
 from prep.model import StageLog
+from prep.stages._checks import as_signal
+from prep.stages._design import warped_corner
 
 
 @dataclass(frozen=True)

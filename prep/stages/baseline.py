@@ -4,10 +4,10 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage, signal
 
-from prep.stages._checks import as_signal
-from prep.stages._design import warped_corner
 from prep.config import BaselineConfig
 from prep.model import StageLog
+from prep.stages._checks import as_signal
+from prep.stages._design import warped_corner
 
 
 def _odd(n: float) -> int:

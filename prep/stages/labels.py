@@ -4,8 +4,7 @@ from __future__ import annotations
 import numpy as np
 
 from prep.evaluate import match_pairs
-from prep.model import Annotations
-from prep.model import BEAT_SYMBOLS
+from prep.model import BEAT_SYMBOLS, Annotations
 
 
 def attach_labels(r: np.ndarray, ann: Annotations | None, fs: float, window_ms: float) -> np.ndarray:

@@ -6,10 +6,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import signal
 
-from prep.stages._checks import as_signal
 from prep.config import PowerlineConfig
 from prep.model import StageLog
-
+from prep.stages._checks import as_signal
 
 _MAX_SEGMENTS = 64  # spectrum segments used on long records (enough for a stable estimate)
 

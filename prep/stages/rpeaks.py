@@ -22,9 +22,9 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage, signal
 
-from prep.stages._checks import as_signal
 from prep.config import RpeaksConfig
 from prep.model import StageLog
+from prep.stages._checks import as_signal
 
 _REF_CANDIDATES = 16      # candidates in the local reference (common practice, no source)
 _REF_QUANTILE = 0.8       # reference = this quantile of candidate heights (tuned, docs/rpeaks.md)
