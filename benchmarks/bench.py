@@ -38,7 +38,7 @@ import numpy as np  # noqa: E402
 from prep.config import Config  # noqa: E402
 from prep.evaluate import Score, match_beats  # noqa: E402
 from prep.pipeline.record import process_record  # noqa: E402
-from prep.io.read import read_wfdb
+from prep.io.wfdb import read_wfdb
 from prep.model import BEAT_SYMBOLS  # noqa: E402
 
 ACCURACY = [("mitdb", r) for r in ("100", "105", "119")] + \

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 
 import prep
-from prep.io.read import read_wfdb
+from prep.io.wfdb import read_wfdb
 
 from .conftest import DEMO, ROOT
 

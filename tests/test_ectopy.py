@@ -12,7 +12,7 @@ import pytest
 
 from prep.config import Config
 from prep.demo import _beat_wave
-from prep.io.read import read_wfdb
+from prep.io.wfdb import read_wfdb
 from prep.model import Annotations, Record
 from prep.pipeline.record import process_record
 from prep.stages.rpeaks import between_beats

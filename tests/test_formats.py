@@ -1,6 +1,7 @@
 """Recording formats: EDF/EDF+ (incl. EDF+D built from the specification), WFDB multi-segment
 and multi-rate records, CSV annotations, and 12-lead records."""
 import json
+import shutil
 
 import numpy as np
 import pandas as pd
@@ -9,7 +10,7 @@ import wfdb
 
 from prep.dataset.run import run
 from prep.io.edf import parse_tals, read_edf
-from prep.io.read import read_wfdb
+from prep.io.wfdb import read_wfdb
 
 from .conftest import DEMO, ref_path
 from .edf_by_hand import write_edf_plus
@@ -130,3 +131,39 @@ def test_twelve_lead_records(tmp_path):
     leads = pd.read_parquet(tmp_path / "out" / "leads.parquet")
     assert set(leads[~leads.in_axis].lead) == {"vx", "vy", "vz"}  # Frank leads: only on request
     assert s.exit_code == 0
+
+
+# ---- the format registry ---------------------------------------------------------------------
+
+def test_every_format_module_is_registered_and_scans_agree_with_explicit_paths(tmp_path):
+    # common practice, no source: a folder scan and an explicit path must find the same records
+    import importlib
+    import pkgutil
+
+    import prep.io as io_pkg
+    from prep.io.sources import FORMATS, find_sources
+    modules = [m.name for m in pkgutil.iter_modules(io_pkg.__path__)
+               if not m.name.startswith("_") and m.name != "sources"]
+    registered = {importlib.import_module(f"prep.io.{m}").FORMAT.kind for m in modules}
+    assert registered == set(FORMATS)
+    assert all(s == s.lower() and s.startswith(".") for f in FORMATS.values() for s in f.suffixes)
+    for name in ("night01.hea", "night01.dat", "night01.atr"):
+        shutil.copy(DEMO / name, tmp_path / name)
+    write_edf_plus(tmp_path / "patch.EDF", np.zeros((1, 2500)), ["ECG II"], 250, 1, [0.0])
+    shutil.copy(tmp_path / "patch.EDF", tmp_path / "other.bdf")
+    (tmp_path / "loop").mkdir()
+    (tmp_path / "loop" / "back").symlink_to(tmp_path, target_is_directory=True)
+    scanned, problems = find_sources([tmp_path])
+    explicit, _ = find_sources([tmp_path / "night01.hea", tmp_path / "patch.EDF",
+                                tmp_path / "other.bdf"])
+    assert scanned == explicit and [s.kind for s in scanned] == ["wfdb", "edf", "edf"]
+    assert not problems
+
+
+def test_upper_case_wfdb_header_is_named_not_skipped(tmp_path):
+    for name in ("night01.dat", "night01.atr"):
+        shutil.copy(DEMO / name, tmp_path / name)
+    shutil.copy(DEMO / "night01.hea", tmp_path / "night01.HEA")
+    from prep.io.sources import find_sources
+    found, problems = find_sources([tmp_path])
+    assert not found and "lower case" in problems[0] and "night01.HEA" in problems[0]

@@ -9,7 +9,7 @@ from typer.testing import CliRunner
 
 from prep.cli.main import app
 from prep.config import Config, WindowsConfig
-from prep.io.read import read_wfdb
+from prep.io.wfdb import read_wfdb
 from prep.quality.windows import lead_windows
 
 from .conftest import DEMO, ref_path

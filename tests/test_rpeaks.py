@@ -4,7 +4,7 @@ import pytest
 
 from prep.config import RpeaksConfig
 from prep.evaluate import match_beats
-from prep.io.read import read_wfdb
+from prep.io.wfdb import read_wfdb
 from prep.model import BEAT_SYMBOLS
 from prep.stages.bandpass import bandpass
 from prep.stages.baseline import remove_baseline

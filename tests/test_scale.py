@@ -101,7 +101,7 @@ def test_chunked_and_unchunked_runs_agree():
     import numpy as np
 
     from prep.config import Config
-    from prep.io.read import Source
+    from prep.io.sources import Source
     from prep.pipeline.chunks import chunk_plan, process_source
 
     from .conftest import ref_path
@@ -175,7 +175,7 @@ def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
     from prep.dataset.run import resolve_extras
     from prep.dataset.shards import read_shard
     from prep.dataset.view import open_dataset
-    from prep.io.read import find_sources
+    from prep.io.sources import find_sources
     out, _ = demo_run
     root = out / ".shards"
     man = json.loads((out / "manifest.json").read_text())
@@ -242,7 +242,7 @@ def test_edf_record_in_chunks_agrees_with_one_piece(tmp_path):
     import wfdb
 
     from prep.config import Config
-    from prep.io.read import Source, record_length
+    from prep.io.sources import Source, record_length
     from prep.pipeline.chunks import process_source
 
     from .conftest import ref_path
@@ -357,7 +357,7 @@ def test_parallel_runs_start_the_largest_records_first(tmp_path):
     # memory): a long record taken last would leave the other workers idle. Input size stands
     # in for processing time; equal sizes keep the input order.
     from prep.dataset.run import _largest_first
-    from prep.io.read import Source
+    from prep.io.sources import Source
     sizes = {"a": 10, "b": 300, "c": 10, "d": 50}
     found, inputs = [], []
     for name, n in sizes.items():

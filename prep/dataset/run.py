@@ -20,7 +20,7 @@ from prep.dataset.folder import prepare_out, swap_in
 from prep.dataset.shards import read_shard, write_shard
 from prep.dataset.split import load_patient_map
 from prep.errors import ConfigError
-from prep.io.read import Source, find_sources, read_source, source_inputs
+from prep.io.sources import Source, find_sources, source_inputs, source_leads
 from prep.leads import default_axis, resolve_axis
 from prep.pipeline.record import RecordResult
 from prep.stages.labels import load_mapping
@@ -41,27 +41,6 @@ class RunSummary:
     exit_code: int
     splits: dict | None = None
     class_yield: dict | None = None   # the manifest's class_yield section
-
-
-def _peek_leads(src: Source, cfg: Config) -> list[str] | None:
-    """Canonical ECG leads of a source, reading only its header when possible."""
-    if src.kind == "wfdb":
-        try:
-            import wfdb
-
-            from prep.leads import canonical_lead, classify_channel
-            h = wfdb.rdheader(str(src.path))
-            if not h.sig_name:  # a multi-segment header names no signal: read the record
-                return read_source(src, cfg.read).leads
-            names = h.sig_name
-            units = h.units or [""] * len(names)
-            return [canonical_lead(n) for n, u in zip(names, units) if classify_channel(n, u)[0]]
-        except Exception:
-            return None
-    try:
-        return read_source(src, cfg.read).leads
-    except Exception:
-        return None
 
 
 def run(sources: list[str | Path], out: str | Path, *, config: Config | None = None,
@@ -163,7 +142,7 @@ def _axis_and_inputs(found: list[Source], cfg: Config) -> tuple[list[str], list]
     if cfg.leads.select:
         axis = resolve_axis(cfg.leads.select)
     else:
-        peeks = [lp for lp in (_peek_leads(s, cfg) for s in found) if lp]
+        peeks = [lp for lp in (source_leads(s, cfg.read) for s in found) if lp]
         axis = default_axis(peeks)
         if not axis:
             raise ConfigError("the records share no ECG lead; choose the lead axis with --leads "

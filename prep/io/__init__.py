@@ -1,1 +1,2 @@
-"""Reading inputs: finding records, WFDB, CSV and annotation CSV (read), EDF/EDF+ (edf)."""
+"""Reading inputs: the format registry and record discovery (sources), one module per format
+(wfdb, edf, csv), what readers share (_files)."""

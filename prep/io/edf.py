@@ -13,7 +13,9 @@ from pathlib import Path
 
 import numpy as np
 
+from prep.config import ReadConfig
 from prep.errors import RecordError
+from prep.io._files import Format, annotation_csv, check_rate, hashed, sha256_file
 from prep.leads import canonical_lead, classify_channel, scale_to_mv
 from prep.model import Annotations, Record
 
@@ -144,6 +146,7 @@ def _pick_channels(labels, rates, dims, shown):
         raise RecordError("no ECG channel (all channels skipped: " +
                           "; ".join(w for _, w in skipped) + ")", path=shown, stage="read")
     fs = max(rates[i] for i in ecg)
+    check_rate(fs, shown)
     keep = [i for i in ecg if rates[i] == fs]
     skipped += [(labels[i], f"channel '{labels[i]}' is sampled at {rates[i]:g} Hz, not the ECG "
                             f"rate {fs:g} Hz") for i in ecg if rates[i] != fs]
@@ -174,7 +177,6 @@ def _edf_discontinuous(path: Path, h: dict, name, inputs) -> Record:
         inside = (samp >= 0) & (samp < total)
         ann = Annotations(samp[inside], sym[inside], aux=np.full(int(inside.sum()), "", object),
                           source=path.name)
-    from prep.io._files import sha256_file
     return Record(name=name or path.stem, fs=fs, signals=data,
                   lead_names=[h["labels"][i] for i in keep],
                   leads=[canonical_lead(h["labels"][i]) for i in keep], units=["mV"] * len(keep),
@@ -217,8 +219,27 @@ def _edf_contiguous(path: Path, h: dict, name, inputs, sampfrom: int = 0,
         ann = Annotations(samp[inside], sym[inside], aux=np.full(int(inside.sum()), "", object),
                           source=path.name)
     warnings: list[str] = []
-    from prep.io._files import sha256_file
     return Record(name=name or path.stem, fs=fs, signals=data,
                   lead_names=[labels[i] for i in keep], leads=[canonical_lead(labels[i]) for i in keep],
                   units=["mV"] * len(keep), inputs=inputs or [(path.name, sha256_file(path))],
                   skipped=skipped, annotations=ann, path=shown, channels=keep, warnings=warnings)
+
+
+def record_files(path: Path, cfg: ReadConfig) -> list[Path]:
+    """The EDF file and its annotation CSV, if present."""
+    ann = annotation_csv(path.with_suffix(""))
+    return [path] + ([ann] if ann.exists() else [])
+
+
+def _read(path: Path, cfg: ReadConfig, *, name, inputs, sampfrom: int = 0,
+          sampto: int | None = None) -> Record:
+    ranged = {"sampfrom": sampfrom, "sampto": sampto} if (sampfrom or sampto) else {}
+    return read_edf(path, name=name, inputs=inputs or hashed(record_files(path, cfg)), **ranged)
+
+
+def _leads(path: Path, cfg: ReadConfig) -> list[str]:
+    return read_edf(path).leads
+
+
+FORMAT = Format(kind="edf", suffixes=(".edf", ".bdf"), read=_read, files=record_files,
+                length=contiguous_length, leads=_leads)

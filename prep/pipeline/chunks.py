@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from prep.config import Config
-from prep.io.read import Source, read_source, record_length, source_inputs
+from prep.io.sources import Source, read_source, record_length, source_inputs
 from prep.model import StageLog
 from prep.pipeline.record import RecordResult, safe_process
 from prep.quality.windows import main_fault

@@ -18,7 +18,7 @@ def plot_beat_context(ds, beat_id: str, out: str | Path, seconds: float = 3.0) -
     import matplotlib.pyplot as plt
 
     from prep.config import ReadConfig
-    from prep.io.read import Source, read_source
+    from prep.io.sources import Source, read_source
 
     info = ds.explain(beat_id)
     rec_name = info["record"]

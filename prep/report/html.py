@@ -104,7 +104,7 @@ def _excluded_examples(ds, per_reason: int = 2) -> str:
     import matplotlib.pyplot as plt
 
     from prep.config import ReadConfig
-    from prep.io.read import Source, read_source
+    from prep.io.sources import Source, read_source
     t = ds.table
     out = []
     seg = ds.manifest["config"]["segment"]

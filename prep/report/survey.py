@@ -8,7 +8,7 @@ import pandas as pd
 
 from prep.config import Config
 from prep.errors import BeatmillError, ConfigError
-from prep.io.read import find_sources, read_source
+from prep.io.sources import find_sources, read_source
 from prep.pipeline.record import process_record
 
 _OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt}

@@ -1,80 +1,63 @@
-"""Reading records: WFDB (via ``wfdb``) and CSV (one column per lead).
+"""WFDB records (PhysioNet's open format): a ``.hea`` header naming signal files, read with
+``wfdb``; reference annotations from the file named by ``ReadConfig.annotation_extension``.
 
-Readers return a :class:`prep.model.Record` in mV with NaN for missing samples, the non-ECG
-channels skipped with their reason, reference annotations when present, and the SHA-256 of every
-file read. Errors name the file and say what to do.
+Registered in :data:`prep.io.sources.FORMATS` by :data:`FORMAT`.
 """
 from __future__ import annotations
 
-import json
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from prep.config import ReadConfig
 from prep.errors import RecordError
-from prep.io._files import check_rate, sha256_file
+from prep.io._files import Format, annotation_csv, check_rate, hashed
 from prep.leads import canonical_lead, classify_channel, scale_to_mv
 from prep.model import Annotations, Record
 
 
-@dataclass(frozen=True)
-class Source:
-    """One input record found on disk: its kind ('wfdb' or 'csv'), path and display name."""
-
-    kind: str
-    path: Path  # WFDB: the base path without extension; CSV: the file
-    name: str
-
-
-def find_sources(items: list[str | Path]) -> tuple[list[Source], list[str]]:
-    """Turn the user's arguments (header paths, base names, CSV files, folders) into sources.
-
-    Returns the sources (sorted, de-duplicated) and messages for arguments that matched nothing.
-    Record names come from the file name; where two inputs share one, they become the path
-    relative to the common input root, without extension.
-    """
-    found: list[tuple[str, Path]] = []
-    problems: list[str] = []
-    for item in items:
-        p = Path(item)
-        if p.is_dir():
-            hits = sorted(set(p.rglob("*.hea")) | set(p.rglob("*.csv")) | set(p.rglob("*.edf")) |
-                          set(p.rglob("*.EDF")))
-            hits = [h for h in hits if not h.name.endswith(".annotations.csv")]
-            if not hits:
-                problems.append(f"folder {p} holds no WFDB header (.hea), EDF or CSV file")
-            for h in hits:
-                kind = {".hea": "wfdb", ".csv": "csv"}.get(h.suffix.lower(), "edf")
-                found.append((kind, h))
-        elif p.suffix.lower() == ".hea" and p.exists():
-            found.append(("wfdb", p))
-        elif p.suffix.lower() == ".csv" and p.exists():
-            found.append(("csv", p))
-        elif p.suffix.lower() in (".edf", ".bdf") and p.exists():
-            found.append(("edf", p))
-        elif p.with_suffix(p.suffix + ".hea").exists() if p.suffix else p.with_suffix(".hea").exists():
-            found.append(("wfdb", Path(str(p) + ".hea")))
-        else:
-            problems.append(f"{p}: no such record (give a .hea file, a record base name, a .csv "
-                            "file or a folder)")
-    uniq = sorted({(k, h.resolve()) for k, h in found}, key=lambda t: str(t[1]))
-    bases = [(k, h.with_suffix("") if k == "wfdb" else h) for k, h in uniq]
-    # multi-segment WFDB layouts: segment headers named by a master header are not records
-    segment_names = _segment_names([b for k, b in bases if k == "wfdb"])
-    bases = [(k, b) for k, b in bases if not (k == "wfdb" and b in segment_names)]
-    names = [b.name if k == "wfdb" else b.stem for k, b in bases]
-    dup = {n for n in names if names.count(n) > 1}
-    if dup:
-        import os
-        root = Path(os.path.commonpath([str(b.parent) for _, b in bases]))
-        names = [str((b if k == "wfdb" else b.with_suffix("")).relative_to(root)) if n in dup
-                 else n for (k, b), n in zip(bases, names)]
-    return [Source(k, b, n) for (k, b), n in zip(bases, names)], problems
+def record_files(base: Path, cfg: ReadConfig) -> list[Path]:
+    """Every file a WFDB record is read from, without decoding it: the header, the signal files
+    it names, the annotation file and an annotation CSV, those present, sorted."""
+    files = {Path(str(base) + ".hea")}
+    try:
+        text = Path(str(base) + ".hea").read_bytes().decode("latin-1")
+        lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+        for ln in lines[1:]:
+            tok = ln.split()
+            if tok and tok[0] != "~":
+                files.add(base.parent / tok[0])
+    except OSError:
+        pass
+    files.add(Path(str(base) + "." + cfg.annotation_extension))
+    files.add(annotation_csv(base))
+    return [f for f in sorted(files) if f.is_file()]
 
 
-def _segment_names(bases: list[Path]) -> set[Path]:
+def record_length(base: Path) -> tuple[int, float]:
+    """(samples, rate) from the header; (0, 0.0) for multi-segment and several-rate records,
+    which are read whole."""
+    import wfdb
+    h = wfdb.rdheader(str(base))
+    several_rates = any(int(x or 1) != 1 for x in (h.samps_per_frame or []))
+    if getattr(h, "n_seg", None) or several_rates:
+        return 0, 0.0
+    return int(h.sig_len or 0), float(h.fs or 0)
+
+
+def header_leads(base: Path, cfg: ReadConfig) -> list[str]:
+    """Canonical ECG leads from the header alone (a multi-segment header names no signal: then
+    the record is read)."""
+    import wfdb
+    h = wfdb.rdheader(str(base))
+    if not h.sig_name:
+        return read_wfdb(base, cfg).leads
+    units = h.units or [""] * len(h.sig_name)
+    return [canonical_lead(n) for n, u in zip(h.sig_name, units) if classify_channel(n, u)[0]]
+
+
+def segment_headers(bases: list[Path]) -> set[Path]:
+    """Headers named as segments by a multi-segment master header: parts, not records."""
     out: set[Path] = set()
     for b in bases:
         try:
@@ -89,105 +72,6 @@ def _segment_names(bases: list[Path]) -> set[Path]:
                     out.add(b.parent / seg)
     return out
 
-
-def source_inputs(src: Source, cfg: ReadConfig) -> list[tuple[str, str]]:
-    """(file name, SHA-256) of every file a source's record is read from, without decoding it:
-    WFDB header, signal files named by the header, annotation file; CSV and its sidecar."""
-    extra = [_annotation_csv(src)] if _annotation_csv(src).exists() else []
-    if src.kind in ("csv", "edf"):
-        side = [src.path.with_suffix(".json")] if src.kind == "csv" else []
-        files = [src.path] + [f for f in side if f.exists()] + extra
-        return [(f.name, sha256_file(f)) for f in files]
-    base = src.path
-    files = {Path(str(base) + ".hea")}
-    try:
-        text = Path(str(base) + ".hea").read_bytes().decode("latin-1")
-        lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
-        for ln in lines[1:]:
-            tok = ln.split()
-            if tok and tok[0] != "~":
-                files.add(base.parent / tok[0])
-    except OSError:
-        pass
-    files.add(Path(str(base) + "." + cfg.annotation_extension))
-    files.update(extra)
-    return [(f.name, sha256_file(f)) for f in sorted(files) if f.is_file()]
-
-
-def read_source(src: Source, cfg: ReadConfig, inputs=None, sampfrom: int = 0,
-                sampto: int | None = None) -> Record:
-    """Read any source; ``inputs`` (its files' checksums, when the caller has them) are not
-    hashed again. ``sampfrom``/``sampto`` read one stretch of a WFDB or EDF/EDF+C record
-    (annotation samples then count from ``sampfrom``); see :func:`record_length`."""
-    ranged = {"sampfrom": sampfrom, "sampto": sampto} if (sampfrom or sampto) else {}
-    if src.kind == "wfdb":
-        rec = read_wfdb(src.path, cfg, name=src.name, inputs=inputs, **ranged)
-    elif src.kind == "edf":
-        from prep.io.edf import read_edf
-        rec = read_edf(src.path, name=src.name, inputs=inputs or source_inputs(src, cfg),
-                       **ranged)
-    else:
-        if ranged:
-            raise ValueError("CSV records are read whole")
-        rec = read_csv(src.path, cfg, name=src.name, inputs=inputs)
-    if rec.annotations is None:
-        rec.annotations = read_annotation_csv(_annotation_csv(src), rec.fs, rec.n_samples,
-                                              offset=sampfrom)
-    return rec
-
-
-def record_length(src: Source) -> tuple[int, float]:
-    """(samples, rate) of a record that can be read in stretches, from its header alone;
-    (0, 0.0) for the others (CSV, multi-segment or several-rate WFDB, EDF+D, unreadable)."""
-    try:
-        if src.kind == "wfdb":
-            import wfdb
-            h = wfdb.rdheader(str(src.path))
-            several_rates = any(int(x or 1) != 1 for x in (h.samps_per_frame or []))
-            if getattr(h, "n_seg", None) or several_rates:
-                return 0, 0.0
-            return int(h.sig_len or 0), float(h.fs or 0)
-        if src.kind == "edf":
-            from prep.io.edf import contiguous_length
-            return contiguous_length(src.path)
-    except Exception:
-        pass
-    return 0, 0.0
-
-
-def _annotation_csv(src: Source) -> Path:
-    base = src.path if src.kind == "wfdb" else src.path.with_suffix("")
-    return Path(str(base) + ".annotations.csv")
-
-
-def read_annotation_csv(path: Path, fs: float, n_samples: int,
-                        offset: int = 0) -> Annotations | None:
-    """Reference annotations from a CSV with columns ``symbol`` and ``sample`` or ``time_s``
-    (optional ``aux``), for databases that ship them that way; None when the file is absent.
-    ``offset``: the record sample the signal read starts at (for a stretch of a long record)."""
-    import pandas as pd
-
-    if not path.exists():
-        return None
-    try:
-        df = pd.read_csv(path)
-    except Exception as exc:
-        raise RecordError(f"annotation CSV cannot be parsed ({type(exc).__name__}: {exc})",
-                          path=str(path), stage="read") from None
-    if "symbol" not in df or not ({"sample", "time_s"} & set(df.columns)):
-        raise RecordError("annotation CSV needs a 'symbol' column and a 'sample' or 'time_s' "
-                          "column", path=str(path), stage="read")
-    if "sample" in df:
-        samp = pd.to_numeric(df["sample"], errors="coerce")
-    else:
-        samp = (pd.to_numeric(df["time_s"], errors="coerce") * fs).round()
-    ok = samp.notna().to_numpy()
-    samp = samp.to_numpy()[ok].astype(np.int64) - int(offset)
-    sym = df["symbol"].astype(str).str.strip().to_numpy(dtype=object)[ok]
-    aux = (df["aux"].fillna("").astype(str).to_numpy(dtype=object)[ok] if "aux" in df
-           else np.full(samp.size, "", dtype=object))
-    inside = (samp >= 0) & (samp < n_samples)
-    return Annotations(samp[inside], sym[inside], aux=aux[inside], source=path.name)
 
 
 def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | None = None,
@@ -239,7 +123,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     data = np.ascontiguousarray(sig[:, keep].T, dtype=np.float64)
     data *= np.array([scale_to_mv(units[i]) for i in keep])[:, None]
     ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1], offset=sampfrom)
-    inputs = inputs or source_inputs(Source("wfdb", base, name or base.name), cfg)
+    inputs = inputs or hashed(record_files(base, cfg))
     bad = ~np.isfinite(data)
     if bad.any():
         warnings.append(f"{int(bad.sum())} missing or non-finite samples become gaps")
@@ -275,7 +159,7 @@ def _read_multirate(base: Path, spf: list[int], cfg: ReadConfig, name, shown, wa
     return Record(name=name or base.name, fs=fs0 * top, signals=data, warnings=warnings,
                   lead_names=[names[i] for i in keep], leads=[canonical_lead(names[i]) for i in keep],
                   units=["mV"] * len(keep),
-                  inputs=inputs or source_inputs(Source("wfdb", base, base.name), cfg),
+                  inputs=inputs or hashed(record_files(base, cfg)),
                   skipped=skipped, annotations=ann, comments=list(rec.comments or []), path=shown,
                   channels=keep)
 
@@ -389,59 +273,13 @@ def _read_wfdb_annotations(base: Path, ext: str, n_samples: int,
                        source=path.name, subtype=sub[inside])
 
 
-def read_csv(path: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | None = None,
-             inputs=None,
-             fs: float | None = None) -> Record:
-    """Read a CSV record: a header row of lead names, one column per lead, values in mV.
+def _read(base: Path, cfg: ReadConfig, *, name, inputs, sampfrom: int = 0,
+          sampto: int | None = None) -> Record:
+    ranged = {"sampfrom": sampfrom, "sampto": sampto} if (sampfrom or sampto) else {}
+    return read_wfdb(base, cfg, name=name, inputs=inputs, **ranged)
 
-    The rate comes from ``fs``, else ``cfg.csv_fs_hz``, else a sidecar JSON next to the file
-    (``{"fs": 250, "units": "mV"}``). A column named ``time``/``t``/``sample`` is ignored.
-    """
-    import pandas as pd
 
-    path = Path(path)
-    shown = str(path)
-    side = path.with_suffix(".json")
-    meta = {}
-    if side.exists():
-        try:
-            meta = json.loads(side.read_text(encoding="utf-8"))
-        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-            raise RecordError(f"sidecar {side.name} is not valid JSON ({exc})", path=shown,
-                              stage="read") from None
-    rate = fs or cfg.csv_fs_hz or meta.get("fs")
-    try:
-        rate = float(rate) if rate else 0.0
-    except (TypeError, ValueError):
-        rate = 0.0
-    if not rate:
-        raise RecordError("no sampling rate; pass --fs or write a sidecar "
-                          f"{side.name} with {{\"fs\": <Hz>}}", path=shown, stage="read")
-    check_rate(rate, shown)
-    try:
-        df = pd.read_csv(path)
-    except Exception as exc:
-        raise RecordError(f"cannot parse the CSV ({type(exc).__name__}: {exc})", path=shown,
-                          stage="read") from None
-    df = df[[c for c in df.columns if str(c).strip().lower() not in ("time", "t", "sample", "time_s")]]
-    units = str(meta.get("units", "mV"))
-    keep, skipped = [], []
-    for c in df.columns:
-        ok, why = classify_channel(str(c), units)
-        (keep.append(c) if ok else skipped.append((str(c), why)))
-    if not keep or len(df) == 0:
-        raise RecordError("no ECG column with samples", path=shown, stage="read")
-    bad = [c for c in keep if not pd.api.types.is_numeric_dtype(df[c])]
-    if bad:
-        col = bad[0]
-        conv = pd.to_numeric(df[col], errors="coerce")
-        row = int(np.flatnonzero(conv.isna() & df[col].notna())[0]) + 2
-        raise RecordError(f"column '{col}' holds text (first at line {row}: {df[col].iloc[row - 2]!r}); "
-                          "leave cells empty for missing samples", path=shown, lead=str(col),
-                          stage="read")
-    data = df[keep].to_numpy(dtype=np.float64).T * scale_to_mv(units)
-    return Record(name=name or path.stem, fs=rate, signals=np.ascontiguousarray(data),
-                  lead_names=[str(c) for c in keep], leads=[canonical_lead(str(c)) for c in keep],
-                  units=["mV"] * len(keep), inputs=inputs or source_inputs(Source("csv", path, path.stem), cfg),
-                  skipped=skipped, path=shown,
-                  channels=[list(df.columns).index(c) for c in keep])
+FORMAT = Format(kind="wfdb", suffixes=(".hea",), read=_read, files=record_files,
+                length=record_length, leads=header_leads, record_path=lambda p: p.with_suffix(""),
+                record_name=lambda b: b.name, not_records=segment_headers,
+                exact_case=True)  # wfdb opens "<base>.hea"
