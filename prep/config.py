@@ -25,10 +25,47 @@ from typing import Any
 from prep.errors import ConfigError
 
 
+@dataclass(frozen=True)
+class Items:
+    """What a list-valued setting must hold, declared beside the field and checked generically.
+
+    ``kind``: "number" (each within ``lo``..``hi``) or "name" (non-empty text); ``length``: an
+    exact length; ``ascending``: [low, high] with low < high; ``distinct``: no repeats (names
+    compared case-insensitively); ``nonempty``; ``positive_sum``. ``says``: the rule in words.
+    """
+
+    kind: str
+    says: str
+    lo: float | None = None
+    hi: float | None = None
+    length: int | None = None
+    ascending: bool = False
+    distinct: bool = False
+    nonempty: bool = False
+    positive_sum: bool = False
+
+    def broken(self, value: list) -> bool:
+        if self.kind == "number":
+            if any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v)
+                   for v in value):
+                return True
+            if any((self.lo is not None and v < self.lo) or (self.hi is not None and v > self.hi)
+                   for v in value):
+                return True
+        elif any(not isinstance(v, str) or not v.strip() for v in value):
+            return True
+        keys = [v.strip().lower() if isinstance(v, str) else v for v in value]
+        return bool((self.length is not None and len(value) != self.length)
+                    or (self.ascending and len(value) == 2 and not value[0] < value[1])
+                    or (self.distinct and len(set(keys)) != len(keys))
+                    or (self.nonempty and not value)
+                    or (self.positive_sum and sum(value) <= 0))
+
+
 def _f(default, doc: str, source: str, *, choices=None, lo=None, hi=None, lo_open=False,
-       factory=None):
+       items: Items | None = None, factory=None):
     meta = {"doc": doc, "source": source, "choices": choices, "lo": lo, "hi": hi,
-            "lo_open": lo_open}
+            "lo_open": lo_open, "items": items}
     if factory is not None:
         return field(default_factory=factory, metadata=meta)
     return field(default=default, metadata=meta)
@@ -49,7 +86,9 @@ class LeadsConfig:
     select: list = _f(None, "Lead axis of the dataset, in order (canonical or alias names, "
                       "case-insensitive, e.g. [\"II\", \"V5\"]). Empty: the ECG leads every record "
                       "shares (see docs/leads.md for the order).",
-                      "design choice: a fixed lead axis per dataset", factory=list)
+                      "design choice: a fixed lead axis per dataset",
+                      items=Items("name", "a list of distinct lead names", distinct=True),
+                      factory=list)
     drop_incomplete_beats: bool = _f(False, "Exclude beats that miss a lead of the axis (reason "
                                      "lead_missing) instead of keeping them zero-filled with "
                                      "lead_mask False.", "design choice")
@@ -61,6 +100,8 @@ class PowerlineConfig:
                        "design choice")
     candidates_hz: list = _f(None, "Mains frequencies to test, in Hz.",
                              "IEC 60038 nominal mains frequencies (50 and 60 Hz)",
+                             items=Items("number", "a list of at least one frequency between 1 and 1000 Hz",
+                                         lo=1.0, hi=1000.0, nonempty=True),
                              factory=lambda: [50.0, 60.0])
     min_peak_db: float = _f(6.0, "A candidate counts as present when its spectral peak stands at "
                             "least this many dB above the neighbouring spectrum (2 to 5 Hz away).",
@@ -266,7 +307,8 @@ class LabelsConfig:
     train_classes: list = _f(None, "Classes kept in the training split (e.g. [\"N\"]); beats of "
                              "training patients in other classes are excluded (not_train_class). "
                              "Empty: every class. 'unlabeled' names beats without a reference label.",
-                             "design choice", factory=list)
+                             "design choice", items=Items("name", "a list of non-empty names"),
+        factory=list)
     exclude_annotated_noise: bool = _f(True, "Exclude beats inside stretches the annotator marked "
                                        "as noisy or unreadable in a used lead (annotated_noise).",
                                        "design choice")
@@ -282,16 +324,21 @@ class SplitConfig:
                               "Empty: not used.", "design choice")
     ratios: list = _f(None, "Train, validation, test shares of kept beats, met as closely as whole "
                       "patients allow.", "common practice, no source",
-                      factory=lambda: [0.7, 0.15, 0.15])
+                      items=Items("number", "three non-negative shares with a positive sum", lo=0.0,
+                                  length=3, positive_sum=True),
+        factory=lambda: [0.7, 0.15, 0.15])
     seed: int = _f(0, "Seed of the patient assignment (same seed, same split).", "design choice",
                    lo=0, hi=2**32 - 1)
     train_patients: list = _f(None, "Fixed training patients. When any fixed list is given, "
                               "patients in none of them are excluded (not_in_split_lists).",
-                              "design choice (reproducing a published split)", factory=list)
+                              "design choice (reproducing a published split)", items=Items("name", "a list of non-empty names"),
+        factory=list)
     val_patients: list = _f(None, "Fixed validation patients (see train_patients).",
-                            "design choice", factory=list)
+                            "design choice", items=Items("name", "a list of non-empty names"),
+        factory=list)
     test_patients: list = _f(None, "Fixed test patients (see train_patients).", "design choice",
-                             factory=list)
+                             items=Items("name", "a list of non-empty names"),
+        factory=list)
 
 
 @dataclass(frozen=True)
@@ -312,14 +359,16 @@ class WindowsConfig:
     amplitude_range_mv: list = _f(None, "Plausible range of the window's robust amplitude (99th "
                                   "minus 1st percentile of the filtered lead), mV; outside: "
                                   "unusable.", "common practice, no source",
-                                  factory=lambda: [0.05, 10.0])
+                                  items=Items("number", "[low, high] with 0 <= low < high", lo=0.0, length=2, ascending=True),
+        factory=lambda: [0.05, 10.0])
     ksqi_min: float = _f(5.0, "kSQI (kurtosis) below this: noisy.",
                          "Li, Mark & Clifford 2008 (Physiol Meas 29:15), kSQI > 5 for good "
                          "ECG, from memory", lo=0.0, hi=100.0)
     psqi_range: list = _f(None, "pSQI (power 5-15 Hz / 5-40 Hz) outside this range: noisy.",
                           "Li et al. 2008 used 0.5-0.8 for good ECG (from memory); widened here: "
                           "clean MIT-BIH, svdb and nstdb windows measured 0.50 to 0.93 (5th-95th "
-                          "percentiles, docs/quality.md)", factory=lambda: [0.4, 0.95])
+                          "percentiles, docs/quality.md)", items=Items("number", "[low, high] with 0 <= low < high", lo=0.0, length=2, ascending=True),
+        factory=lambda: [0.4, 0.95])
     bassqi_min: float = _f(0.5, "basSQI (1 - power 0-1 Hz / 0-40 Hz, before baseline removal) "
                            "below this: noisy.", "Li et al. 2008 / Clifford et al. 2012 use 0.95 "
                            "(from memory); lowered because wander is removed downstream and clean "
@@ -339,7 +388,8 @@ class WindowsConfig:
                               "common practice, no source", lo=-1.0, hi=1.0)
     hr_range_bpm: list = _f(None, "Heart rate outside this range: rhythm finding "
                             "rate_out_of_range (reported, never part of the grade).",
-                            "Orphanidou et al. 2015: 40-180 bpm", factory=lambda: [40.0, 180.0])
+                            "Orphanidou et al. 2015: 40-180 bpm", items=Items("number", "[low, high] with 0 <= low < high", lo=0.0, length=2, ascending=True),
+        factory=lambda: [40.0, 180.0])
     max_rr_s: float = _f(3.0, "Longest RR above this: rhythm finding long_rr (reported, never "
                          "part of the grade).", "Orphanidou et al. 2015: 3 s",
                          lo=0.5, hi=30.0)
@@ -497,8 +547,6 @@ class Config:
                 except re.error as exc:
                     out.append(f"{origin}: [split] patient_pattern is not a valid regular "
                                f"expression ({exc})")
-            if len(set(self.powerline.candidates_hz)) == 0:
-                out.append(f"{origin}: [powerline] candidates_hz must list at least one frequency")
         return out
 
     def validate(self) -> "Config":
@@ -577,30 +625,9 @@ def _check_field(origin: str, section: str, f: dataclasses.Field, value: Any) ->
     elif kind is list:
         if not isinstance(value, list):
             return [f"{where} must be a list. Got {value!r} instead."]
-        if f.name == "candidates_hz":
-            bad = [v for v in value if isinstance(v, bool) or not isinstance(v, (int, float))
-                   or not 1.0 <= v <= 1000.0]
-            if bad:
-                return [f"{where} must list frequencies between 1 and 1000 Hz. Got {bad!r}."]
-        if f.name in ("amplitude_range_mv", "psqi_range", "hr_range_bpm"):
-            if len(value) != 2 or any(isinstance(v, bool) or not isinstance(v, (int, float))
-                                      for v in value) or not 0 <= value[0] < value[1]:
-                return [f"{where} must be [low, high] with 0 <= low < high. Got {value!r} instead."]
-            return []
-        if f.name == "ratios":
-            if len(value) != 3 or any(isinstance(v, bool) or not isinstance(v, (int, float))
-                                      or v < 0 for v in value) or sum(value) <= 0:
-                return [f"{where} must be three non-negative shares with a positive sum. "
-                        f"Got {value!r} instead."]
-            return []
-        if f.name in ("train_classes", "train_patients", "val_patients", "test_patients"):
-            if any(not isinstance(v, str) or not v.strip() for v in value):
-                return [f"{where} must list non-empty names. Got {value!r} instead."]
-            return []
-        if f.name == "select":
-            bad = [v for v in value if not isinstance(v, str) or not v.strip()]
-            if bad or len({v.strip().lower() for v in value if isinstance(v, str)}) != len(value):
-                return [f"{where} must list distinct lead names. Got {value!r} instead."]
+        rule = meta.get("items")
+        if rule is not None and rule.broken(value):
+            return [f"{where} must be {rule.says}. Got {value!r} instead."]
         return []
     lo, hi = meta.get("lo"), meta.get("hi")
     if lo is not None and (value < lo or (meta.get("lo_open") and value == lo)):

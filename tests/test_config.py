@@ -50,3 +50,63 @@ def test_from_toml_errors_name_the_file(tmp_path):
         Config.from_toml(p)
     with pytest.raises(ConfigError, match="does not exist"):
         Config.from_toml(tmp_path / "missing.toml")
+
+
+# ---- every declared constraint rejects a value that breaks it ----------------------------------
+
+def _breaking_values(f):
+    """Values that break each constraint declared on a field (bounds, choices, list rules)."""
+    from prep.config import _default
+    m, d = f.metadata, _default(f)
+    if isinstance(d, bool):
+        return ["yes"]
+    if isinstance(d, (int, float)):
+        out = ["3", float("nan")] if isinstance(d, float) else ["3", 2.5]
+        if m["lo"] is not None:
+            out.append(m["lo"] if m["lo_open"] else m["lo"] - 1)
+        if m["hi"] is not None:
+            out.append(m["hi"] + 1)
+        return out
+    if isinstance(d, str):
+        return [7] + (["no-such-choice"] if m["choices"] else [])
+    rule = m["items"]
+    out = ["not a list"]
+    if rule is None:
+        return out
+    good = list(d) or (["a"] if rule.kind == "name" else [1.0])
+    out += [[True] + good[1:], [None]] if rule.kind == "number" else [[""], [3]]
+    if rule.lo is not None:
+        out.append([rule.lo - 1] + good[1:])
+    if rule.hi is not None:
+        out.append([rule.hi + 1] + good[1:])
+    if rule.length is not None:
+        out.append(good + good[:1])
+    if rule.ascending:
+        out.append(good[::-1])
+    if rule.distinct:
+        out.append(["II", "ii"])
+    if rule.nonempty:
+        out.append([])
+    if rule.positive_sum:
+        out.append([0.0] * rule.length)
+    return out
+
+
+def test_every_constraint_rejects_a_value_that_breaks_it():
+    # every bound, choice and list rule declared in prep/config.py, each broken once
+    import dataclasses
+
+    from prep.config import SECTIONS
+    n = 0
+    for section, klass in SECTIONS.items():
+        for f in dataclasses.fields(klass):
+            for bad in _breaking_values(f):
+                try:
+                    cfg = Config.from_dict({section: {f.name: bad}})
+                    problems = cfg.problems()
+                except ConfigError as exc:
+                    problems = [str(exc)]
+                assert problems and any(f"'{f.name}'" in p or f.name in p for p in problems), \
+                    (section, f.name, bad)
+                n += 1
+    assert n > 150
