@@ -37,7 +37,7 @@ import numpy as np  # noqa: E402
 
 from prep.config import Config  # noqa: E402
 from prep.evaluate import Score, match_beats  # noqa: E402
-from prep.pipeline.record import process_record  # noqa: E402
+from prep.pipeline.record import beats_of_record  # noqa: E402
 from prep.io.wfdb import read_wfdb
 from prep.model import BEAT_SYMBOLS  # noqa: E402
 
@@ -97,7 +97,7 @@ def main(argv: list[str] | None = None) -> None:
         r = read_wfdb(base)
         truth = r.annotations.sample[np.isin(r.annotations.symbol, list(BEAT_SYMBOLS))]
         s = match_beats(_stage_beats(r, cfg), truth, r.fs)
-        res = process_record(r, cfg, r.leads)
+        res = beats_of_record(r, cfg, r.leads)
         k = match_beats(res.beats.loc[res.beats["included"], "r_sample"], truth, r.fs)
         key = "mitdb 100+105+119" if db == "mitdb" else db
         g = groups.setdefault(key, [Score(0, 0, 0), Score(0, 0, 0)])
@@ -126,9 +126,9 @@ def main(argv: list[str] | None = None) -> None:
         if not Path(str(base) + ".hea").exists():
             continue
         r = read_wfdb(base)
-        process_record(r, cfg, r.leads)  # warm imports and caches
-        ours = _best(lambda: process_record(r, cfg, r.leads), a.repeat)
-        base = _best(lambda: process_record(r, plain, r.leads), a.repeat)
+        beats_of_record(r, cfg, r.leads)  # warm imports and caches
+        ours = _best(lambda: beats_of_record(r, cfg, r.leads), a.repeat)
+        base = _best(lambda: beats_of_record(r, plain, r.leads), a.repeat)
         theirs = _best(lambda: nk.ecg_process(r.signals[0], sampling_rate=int(r.fs)),
                        max(1, a.repeat - 1))
         ratios.append(theirs / ours)
@@ -209,7 +209,7 @@ def class_yield_table(ref: Path, cfg: Config) -> None:
         if not Path(str(base) + ".hea").exists():
             continue
         r = read_wfdb(base)
-        y = record_yield(r, process_record(r, cfg, r.leads))
+        y = record_yield(r, beats_of_record(r, cfg, r.leads))
         print(_yield_line(f"{db}/{rec}", y))
         t = total.setdefault(db, {"classes": {c: (0, 0) for c in "NSVF"}, "kept": 0,
                                   "kept_unmatched": 0, "rr_n": 0, "rr_off": 0, "rr_unknown": 0,
@@ -275,7 +275,7 @@ def noise_stress(ref: Path, cfg: Config) -> None:
                 x = add_noise(r.signals, r.fs, truth, noises[kind], snr)
                 rr = Record(f"{rec}_{kind}{snr}", r.fs, x, r.lead_names, r.leads, r.units,
                             annotations=r.annotations, channels=r.channels)
-                res = process_record(rr, cfg, r.leads)
+                res = beats_of_record(rr, cfg, r.leads)
                 kept = res.beats.loc[res.beats["included"], "r_sample"].to_numpy()
                 s = match_beats(kept, truth, r.fs)
                 n_ref += truth.size
@@ -298,7 +298,7 @@ def noise_stress(ref: Path, cfg: Config) -> None:
         if not Path(str(base) + ".hea").exists():
             continue
         r = read_wfdb(base)
-        w = process_record(r, cfg, r.leads).windows
+        w = beats_of_record(r, cfg, r.leads).windows
         truth = _noise_mask(r.n_samples, r.fs)[w["start"].to_numpy()]
         bad = (w["grade"] != "good").to_numpy()
         print(f"{rec:<10}{100 * (bad == truth).mean():>8.1f}{100 * bad[truth].mean():>19.1f}"

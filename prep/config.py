@@ -145,9 +145,9 @@ class BaselineConfig:
 
 @dataclass(frozen=True)
 class RpeaksConfig:
-    min_rr_ms: float = _f(250.0, "Refractory period: two beats in one lead are never closer.",
-                          "physiological refractory period ~200-250 ms (Pan & Tompkins 1985 use 200 ms)",
-                          lo=100.0, hi=600.0)
+    refractory_ms: float = _f(250.0, "Refractory period: two beats in one lead are never closer.",
+                              "physiological refractory period ~200-250 ms (Pan & Tompkins 1985 use 200 ms)",
+                              lo=100.0, hi=600.0)
     threshold: float = _f(0.6, "A candidate QRS is accepted when its energy-envelope peak exceeds "
                           "this fraction of the local reference peak height.",
                           "tuned on synthetic records and MIT-BIH 100/105/119 (docs/rpeaks.md)",
@@ -228,7 +228,7 @@ class QualityConfig:
     min_usable_fraction: float = _f(0.5, "A lead is rejected for a record when less than this "
                                     "share of its windows is usable (not graded unusable).",
                                     "common practice, no source", lo=0.0, hi=1.0)
-    amplitude_z_max: float = _f(10.0, "A beat is excluded (amplitude_outlier) when the robust "
+    max_amplitude_z: float = _f(10.0, "A beat is excluded (amplitude_outlier) when the robust "
                                 "z-score of its log peak-to-peak amplitude exceeds this; the MAD "
                                 "is floored at 0.1, so the threshold is never tighter than a "
                                 "factor e = 2.7 (ectopic beats of double amplitude stay).",
@@ -308,7 +308,7 @@ class LabelsConfig:
                              "training patients in other classes are excluded (not_train_class). "
                              "Empty: every class. 'unlabeled' names beats without a reference label.",
                              "design choice", items=Items("name", "a list of non-empty names"),
-        factory=list)
+                             factory=list)
     exclude_annotated_noise: bool = _f(True, "Exclude beats inside stretches the annotator marked "
                                        "as noisy or unreadable in a used lead (annotated_noise).",
                                        "design choice")
@@ -326,19 +326,19 @@ class SplitConfig:
                       "patients allow.", "common practice, no source",
                       items=Items("number", "three non-negative shares with a positive sum", lo=0.0,
                                   length=3, positive_sum=True),
-        factory=lambda: [0.7, 0.15, 0.15])
+                      factory=lambda: [0.7, 0.15, 0.15])
     seed: int = _f(0, "Seed of the patient assignment (same seed, same split).", "design choice",
                    lo=0, hi=2**32 - 1)
     train_patients: list = _f(None, "Fixed training patients. When any fixed list is given, "
                               "patients in none of them are excluded (not_in_split_lists).",
                               "design choice (reproducing a published split)", items=Items("name", "a list of non-empty names"),
-        factory=list)
+                              factory=list)
     val_patients: list = _f(None, "Fixed validation patients (see train_patients).",
                             "design choice", items=Items("name", "a list of non-empty names"),
-        factory=list)
+                            factory=list)
     test_patients: list = _f(None, "Fixed test patients (see train_patients).", "design choice",
                              items=Items("name", "a list of non-empty names"),
-        factory=list)
+                             factory=list)
 
 
 @dataclass(frozen=True)
@@ -360,16 +360,16 @@ class WindowsConfig:
                                   "minus 1st percentile of the filtered lead), mV; outside: "
                                   "unusable.", "common practice, no source",
                                   items=Items("number", "[low, high] with 0 <= low < high", lo=0.0, length=2, ascending=True),
-        factory=lambda: [0.05, 10.0])
-    ksqi_min: float = _f(5.0, "kSQI (kurtosis) below this: noisy.",
+                                  factory=lambda: [0.05, 10.0])
+    min_ksqi: float = _f(5.0, "kSQI (kurtosis) below this: noisy.",
                          "Li, Mark & Clifford 2008 (Physiol Meas 29:15), kSQI > 5 for good "
                          "ECG, from memory", lo=0.0, hi=100.0)
     psqi_range: list = _f(None, "pSQI (power 5-15 Hz / 5-40 Hz) outside this range: noisy.",
                           "Li et al. 2008 used 0.5-0.8 for good ECG (from memory); widened here: "
                           "clean MIT-BIH, svdb and nstdb windows measured 0.50 to 0.93 (5th-95th "
                           "percentiles, docs/quality.md)", items=Items("number", "[low, high] with 0 <= low < high", lo=0.0, length=2, ascending=True),
-        factory=lambda: [0.4, 0.95])
-    bassqi_min: float = _f(0.5, "basSQI (1 - power 0-1 Hz / 0-40 Hz, before baseline removal) "
+                          factory=lambda: [0.4, 0.95])
+    min_bassqi: float = _f(0.5, "basSQI (1 - power 0-1 Hz / 0-40 Hz, before baseline removal) "
                            "below this: noisy.", "Li et al. 2008 / Clifford et al. 2012 use 0.95 "
                            "(from memory); lowered because wander is removed downstream and clean "
                            "MIT-BIH 100 and nstdb 118 windows measured 0.58-0.75 at their 5th "
@@ -389,17 +389,17 @@ class WindowsConfig:
     hr_range_bpm: list = _f(None, "Heart rate outside this range: rhythm finding "
                             "rate_out_of_range (reported, never part of the grade).",
                             "Orphanidou et al. 2015: 40-180 bpm", items=Items("number", "[low, high] with 0 <= low < high", lo=0.0, length=2, ascending=True),
-        factory=lambda: [40.0, 180.0])
+                            factory=lambda: [40.0, 180.0])
     max_rr_s: float = _f(3.0, "Longest RR above this: rhythm finding long_rr (reported, never "
                          "part of the grade).", "Orphanidou et al. 2015: 3 s",
                          lo=0.5, hi=30.0)
-    rr_ratio_max: float = _f(2.2, "Longest over shortest RR above this: rhythm finding "
+    max_rr_ratio: float = _f(2.2, "Longest over shortest RR above this: rhythm finding "
                              "irregular_rr (reported, never part of the grade).",
                              "Orphanidou et al. 2015: 2.2", lo=1.0, hi=20.0)
-    line_ratio_max: float = _f(0.1, "Share of power within 1 Hz of the mains frequency and its "
+    max_line_share: float = _f(0.1, "Share of power within 1 Hz of the mains frequency and its "
                                "harmonics, after the notch, above this: noisy.",
                                "common practice, no source", lo=0.0, hi=1.0)
-    hf_ratio_max: float = _f(0.2, "Share of power above 40 Hz (muscle) above this: noisy.",
+    max_hf_share: float = _f(0.2, "Share of power above 40 Hz (muscle) above this: noisy.",
                              "common practice, no source", lo=0.0, hi=1.0)
     exclude_noisy: bool = _f(False, "Exclude beats in noisy windows (reason noisy_window) instead "
                              "of keeping them with the flag noisy_window.", "design choice")
@@ -424,6 +424,13 @@ SECTIONS: dict[str, type] = {
     "segment": SegmentConfig, "resample": ResampleConfig, "normalize": NormalizeConfig,
     "quality": QualityConfig, "windows": WindowsConfig, "chunks": ChunksConfig, "labels": LabelsConfig, "split": SplitConfig,
 }
+
+
+# keys renamed in 0.1 (one name per idea), so an older file gets a message that names the new key
+RENAMED = {("rpeaks", "min_rr_ms"): "refractory_ms", ("quality", "amplitude_z_max"): "max_amplitude_z",
+           ("windows", "hf_ratio_max"): "max_hf_share", ("windows", "line_ratio_max"): "max_line_share",
+           ("windows", "rr_ratio_max"): "max_rr_ratio", ("windows", "ksqi_min"): "min_ksqi",
+           ("windows", "bassqi_min"): "min_bassqi"}
 
 
 @dataclass(frozen=True)
@@ -463,6 +470,10 @@ class Config:
             known = {f.name: f for f in fields(klass)}
             kwargs = {}
             for k, v in given.items():
+                if k not in known and (name, k) in RENAMED:
+                    problems.append(f"{origin}: key '{k}' in [{name}] is now called "
+                                    f"'{RENAMED[name, k]}'; rename it in the file")
+                    continue
                 if k not in known:
                     problems.append(f"{origin}: unknown key '{k}' in [{name}]; known keys: "
                                     f"{', '.join(known)}")

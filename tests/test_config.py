@@ -110,3 +110,8 @@ def test_every_constraint_rejects_a_value_that_breaks_it():
                     (section, f.name, bad)
                 n += 1
     assert n > 150
+
+
+def test_a_renamed_key_names_its_new_name():
+    with pytest.raises(ConfigError, match="now called 'max_hf_share'"):
+        Config.from_dict({"windows": {"hf_ratio_max": 0.2}})

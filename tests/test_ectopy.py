@@ -14,7 +14,7 @@ from prep.config import Config
 from prep.demo import _beat_wave
 from prep.io.wfdb import read_wfdb
 from prep.model import Annotations, Record
-from prep.pipeline.record import process_record
+from prep.pipeline.record import beats_of_record
 from prep.stages.rpeaks import between_beats
 from prep.stages.rpeaks import fuse as fuse_det
 
@@ -80,7 +80,7 @@ def test_bigeminy_is_good_for_noise_and_flagged_for_rhythm():
         beats.append(("N", t))
         beats.append(("V", t + 0.55 * base))
         t += 2 * base
-    res = process_record(_record(beats), Config(), ["II", "V5"])
+    res = beats_of_record(_record(beats), Config(), ["II", "V5"])
     w, b = res.windows, res.beats
     full = w[w.end - w.start == int(10 * FS)]
     assert (full.grade == "good").mean() >= 0.9, full[["lead", "grade", "decided_by"]]
@@ -96,7 +96,7 @@ def test_ectopic_beats_in_a_clean_stretch_are_kept():
     # three PVCs with compensatory pauses and one interpolated PVC (inside one sinus cycle)
     ev = {30: ("V", 0.6, "compensatory"), 60: ("V", 0.55, "compensatory"),
           90: ("V", 0.6, "interpolated"), 110: ("V", 0.62, "compensatory")}
-    res = process_record(_record(_sinus(120.0, events=ev)), Config(), ["II", "V5"])
+    res = beats_of_record(_record(_sinus(120.0, events=ev)), Config(), ["II", "V5"])
     b = res.beats
     v = b[b.label == "V"]
     assert len(v) == 4 and v.included.all() and v.is_beat.all(), v[["r_time_s", "reasons"]]
@@ -109,7 +109,7 @@ def test_a_beat_must_show_in_every_clean_lead(v5_gain, kept):
     # a "PVC" with nothing at all in the clean V5 is contradicted: not a heartbeat
     ev = {k: ("V", 0.6, "compensatory") for k in (25, 55, 85)}
     rec = _record(_sinus(110.0, events=ev), v5_gain={"V": v5_gain})
-    v = process_record(rec, Config(), ["II", "V5"]).beats
+    v = beats_of_record(rec, Config(), ["II", "V5"]).beats
     v = v[v.label == "V"]
     assert len(v) == 3
     assert v.included.all() == kept and v.is_beat.all() == kept, v[["reasons", "n_leads_seen"]]
@@ -143,7 +143,7 @@ def test_false_detection_between_two_beats_is_not_a_beat_and_keeps_the_rr():
     beats = _sinus(90.0)
     t0 = (beats[40][1] + beats[41][1]) / 2
     rec = _record(beats, seconds=90.0, artifacts=[(t0, 0, 2.0)])
-    b = process_record(rec, Config(), ["II", "V5"]).beats
+    b = beats_of_record(rec, Config(), ["II", "V5"]).beats
     near = b[(b.r_time_s - t0).abs() < 0.1]
     assert len(near) == 1, "the spike must be detected for this test to mean anything"
     assert not near.is_beat.iloc[0] and not near.included.iloc[0]
@@ -177,7 +177,7 @@ def test_abnormal_classes_are_kept_on_annotated_records(db, rec, floors):
     # reference: the databases' beat annotations, AAMI EC57 classes and 150 ms matching
     from benchmarks.bench import record_yield
     r = read_wfdb(ref_path(db, rec))
-    y = record_yield(r, process_record(r, Config(), r.leads))
+    y = record_yield(r, beats_of_record(r, Config(), r.leads))
     for c, floor in floors.items():
         n, k = y["classes"][c]
         assert n >= 20 and k / n >= floor, (c, k, n)

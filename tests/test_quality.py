@@ -75,9 +75,9 @@ def test_nstdb_grades_follow_the_known_noise_timing(rec, min_agree):
     # MIT-BIH Noise Stress Test Database: noise from minute 5 in alternating 2-minute stretches
     # (database documentation); at 6 dB and below the grades should follow that timing
     from benchmarks.bench import _noise_mask
-    from prep.pipeline.record import process_record
+    from prep.pipeline.record import beats_of_record
     r = read_wfdb(ref_path("nstdb", rec))
-    w = process_record(r, Config(), r.leads).windows
+    w = beats_of_record(r, Config(), r.leads).windows
     truth = _noise_mask(r.n_samples, r.fs)[w.start.to_numpy()]
     agree = ((w.grade != "good").to_numpy() == truth).mean()
     assert agree >= min_agree, agree
@@ -86,9 +86,9 @@ def test_nstdb_grades_follow_the_known_noise_timing(rec, min_agree):
 @pytest.mark.refdata
 def test_nstdb_24db_clean_stretches_stay_good():
     from benchmarks.bench import _noise_mask
-    from prep.pipeline.record import process_record
+    from prep.pipeline.record import beats_of_record
     r = read_wfdb(ref_path("nstdb", "118e24"))
-    w = process_record(r, Config(), r.leads).windows
+    w = beats_of_record(r, Config(), r.leads).windows
     clean = ~_noise_mask(r.n_samples, r.fs)[w.start.to_numpy()]
     assert (w.grade[clean] == "good").mean() >= 0.85  # measured 87.7 %
     assert (w.grade != "unusable").all()
@@ -171,7 +171,7 @@ def test_electrode_motion_noise_false_beats_are_not_kept(snr):
     from benchmarks.bench import add_noise
     from prep.evaluate import match_beats
     from prep.model import BEAT_SYMBOLS, Record
-    from prep.pipeline.record import process_record
+    from prep.pipeline.record import beats_of_record
     em = wfdb.rdrecord(str(ref_path("nstdb", "em"))).p_signal.T
     n_ref = n_tp = n_kept = n_fp = 0
     for name in ("100", "119"):
@@ -180,7 +180,7 @@ def test_electrode_motion_noise_false_beats_are_not_kept(snr):
         x = add_noise(r.signals, r.fs, truth, em, snr)
         rec = Record(name + "em", r.fs, x, r.lead_names, r.leads, r.units,
                      annotations=r.annotations, channels=r.channels)
-        b = process_record(rec, Config(), r.leads).beats
+        b = beats_of_record(rec, Config(), r.leads).beats
         kept = b.loc[b.included, "r_sample"].to_numpy()
         s = match_beats(kept, truth, r.fs)
         n_ref, n_tp, n_kept, n_fp = n_ref + truth.size, n_tp + s.tp, n_kept + kept.size, n_fp + s.fp
@@ -198,9 +198,9 @@ def test_nstdb_published_noisy_record_keeps_no_false_beat():
     # kept, 64.5 % of reference beats kept.
     from prep.evaluate import match_beats
     from prep.model import BEAT_SYMBOLS
-    from prep.pipeline.record import process_record
+    from prep.pipeline.record import beats_of_record
     r = read_wfdb(ref_path("nstdb", "118e00"))
-    b = process_record(r, Config(), r.leads).beats
+    b = beats_of_record(r, Config(), r.leads).beats
     truth = r.annotations.sample[np.isin(r.annotations.symbol, list(BEAT_SYMBOLS))]
     kept = b.loc[b.included, "r_sample"].to_numpy()
     s = match_beats(kept, truth, r.fs)

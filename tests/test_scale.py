@@ -102,15 +102,15 @@ def test_chunked_and_unchunked_runs_agree():
 
     from prep.config import Config
     from prep.io.sources import Source
-    from prep.pipeline.chunks import chunk_plan, process_source
+    from prep.pipeline.chunks import chunk_plan, beats_of_source
 
     from .conftest import ref_path
     base = ref_path("mitdb", "100")
     src = Source("wfdb", Path(base), "100")
-    whole = process_source(src, Config(), ["II", "V5"])
+    whole = beats_of_source(src, Config(), ["II", "V5"])
     cfg = Config().replace(chunks={"chunk_minutes": 5.0})
     assert len(chunk_plan(650000, 360.0, cfg)) == 7
-    parts = process_source(src, cfg, ["II", "V5"])
+    parts = beats_of_source(src, cfg, ["II", "V5"])
     a, b = whole.beats.set_index("r_sample"), parts.beats.set_index("r_sample")
     same = a.index.intersection(b.index)
     assert len(same) >= 0.995 * len(a) and abs(len(a) - len(b)) <= 2
@@ -243,7 +243,7 @@ def test_edf_record_in_chunks_agrees_with_one_piece(tmp_path):
 
     from prep.config import Config
     from prep.io.sources import Source, record_length
-    from prep.pipeline.chunks import process_source
+    from prep.pipeline.chunks import beats_of_source
 
     from .conftest import ref_path
     n = 12 * 60 * 360
@@ -261,8 +261,8 @@ def test_edf_record_in_chunks_agrees_with_one_piece(tmp_path):
             f.writeAnnotation(s / 360.0, -1, y)
     src = Source("edf", path, "night")
     assert record_length(src) == (n, 360.0)
-    whole = process_source(src, Config(), ["II", "V5"])
-    parts = process_source(src, Config().replace(chunks={"chunk_minutes": 3.0}), ["II", "V5"])
+    whole = beats_of_source(src, Config(), ["II", "V5"])
+    parts = beats_of_source(src, Config().replace(chunks={"chunk_minutes": 3.0}), ["II", "V5"])
     assert [lg.counts for lg in parts.logs if lg.stage == "chunks"] == [{"chunks": 4}]
     wa, wb = whole.beats.set_index("r_sample"), parts.beats.set_index("r_sample")
     same = wa.index.intersection(wb.index)
@@ -326,7 +326,7 @@ def test_streamed_manifest_section_writes_the_same_text_as_json_dumps(tmp_path):
     write_manifest(tmp_path / "plain.json", plain)
     write_manifest(tmp_path / "lazy.json", lazy)
     want = json.dumps({**plain, "records": {**recs, "nacht-\u00e9": {**recs["nacht-\u00e9"],
-                                                                      "x": None}}},
+                                                                     "x": None}}},
                       indent=2, ensure_ascii=False) + "\n"
     assert (tmp_path / "plain.json").read_text(encoding="utf-8") == want
     assert (tmp_path / "lazy.json").read_text(encoding="utf-8") == want

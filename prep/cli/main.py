@@ -248,8 +248,8 @@ def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
     typer.echo(f"label     {e['label'] or '-'} (class {e['class']})")
     typer.echo(f"leads     {', '.join(e['leads_used']) or '-'} used")
     typer.echo("status    " + (f"kept, tensor row {e['tensor_index']}" if e["included"]
-                                else "excluded, " + ("a heartbeat" if e["is_beat"] else
-                                                     "not counted as a heartbeat")))
+                               else "excluded, " + ("a heartbeat" if e["is_beat"] else
+                                                    "not counted as a heartbeat")))
     for x in e["reasons"]:
         ev = ""
         if "score" in x:

@@ -181,12 +181,12 @@ def _shard_task(args) -> str:
     """Process one record and write its shard (in a worker process or on a Dask worker)."""
     from threadpoolctl import threadpool_limits
 
-    from prep.pipeline.chunks import process_source
+    from prep.pipeline.chunks import beats_of_source
     src, cfg, axis, mapping, root, key, inputs = args
     # one BLAS thread per task: N worker processes then use N cores, not N x BLAS threads, and
     # the results cannot depend on how many threads a matrix product was split over
     with threadpool_limits(limits=1):
-        res = process_source(src, cfg, axis, mapping, [tuple(x) for x in inputs] or None)
+        res = beats_of_source(src, cfg, axis, mapping, [tuple(x) for x in inputs] or None)
     if inputs and not res.inputs:  # a record that failed still names the files it came from
         res.inputs = [tuple(x) for x in inputs]
     write_shard(root, res, key, inputs)

@@ -74,7 +74,7 @@ def write_shard(root: str, res: RecordResult, config_hash: str, inputs: list) ->
             "class_yield": res.class_yield}
     tensor = res.tensor if res.tensor is not None else np.zeros((0, 0, 0), np.float32)
     hashes = {"tensor.npy": _write_npy_hashed(fs, f"{d}/tensor.npy", tensor.astype(np.float32,
-                                                                                     copy=False))}
+                                                                                   copy=False))}
     blobs = {
         "mask.npy": _npy(res.mask if res.mask is not None else np.zeros((0, 0), bool)),
         "beats.arrow": _ipc(res.beats if res.beats is not None else pd.DataFrame()),

@@ -14,7 +14,7 @@ from prep.errors import BeatmillError
 from prep.io._files import check_rate
 from prep.leads import canonical_lead, default_axis, resolve_axis
 from prep.model import Annotations, Record
-from prep.pipeline.record import safe_process
+from prep.pipeline.record import record_result
 from prep.quality.reasons import FLAGS, REASONS, group
 
 # reason -> (score column, config section, config key) for explanations
@@ -24,7 +24,7 @@ _EVIDENCE = {
     "unlike_neighbours": ("template_corr", "quality", "exclude_template_corr"),
     "one_lead_only": ("n_leads_seen", "rpeaks", "min_lead_template_corr"),
     "unmatched_in_noise": ("qrs_match", "quality", "noise_min_qrs_match"),
-    "amplitude_outlier": ("amplitude_z", "quality", "amplitude_z_max"),
+    "amplitude_outlier": ("amplitude_z", "quality", "max_amplitude_z"),
     "rr_too_short": ("rr_prev_s", "quality", "min_rr_s"),
 }
 
@@ -78,7 +78,7 @@ def process(signals, fs: float, *, leads: list[str] | None = None, config: Confi
     def load() -> Record:
         check_rate(float(fs), f"<{name}>")
         return rec
-    res = safe_process(load, name, cfg, axis, mapping)
+    res = record_result(load, name, cfg, axis, mapping)
     return assemble([res], cfg, axis, [f"<{name}>"], [f"<{name}>"], mapping, pmap, extra)
 
 

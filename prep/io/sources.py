@@ -79,7 +79,7 @@ def find_sources(items: list[str | Path]) -> tuple[list[Source], list[str]]:
                 problems.append(f"folder {p} holds no record file ({kinds})")
             found += [(_format_of(h), h) for h in hits]
         elif p.is_file() and _format_of(p) and not (_format_of(p).exact_case and
-                                                     p.suffix not in _format_of(p).suffixes):
+                                                    p.suffix not in _format_of(p).suffixes):
             found.append((_format_of(p), p))
         else:  # a record named without its suffix (a WFDB base name)
             named = [Path(str(p) + s) for s in _BY_SUFFIX if Path(str(p) + s).is_file()]

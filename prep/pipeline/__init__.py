@@ -1,2 +1,2 @@
-"""One record through every stage (record: process_record, safe_process, RecordResult), and
+"""One record through every stage (record: beats_of_record, record_result, RecordResult), and
 long records in overlapping chunks (chunks)."""

@@ -18,7 +18,7 @@ import pandas as pd
 from prep.config import Config
 from prep.io.sources import Source, read_source, record_length, source_inputs
 from prep.model import StageLog
-from prep.pipeline.record import RecordResult, safe_process
+from prep.pipeline.record import RecordResult, record_result
 from prep.quality.windows import main_fault
 from prep.schema import empty_beats
 
@@ -34,21 +34,21 @@ def chunk_plan(n: int, fs: float, cfg: Config) -> list[tuple[int, int, int, int]
             for a in range(0, n, chunk)]
 
 
-def process_source(src: Source, cfg: Config, axis: list[str], mapping=None,
-                   inputs=None) -> RecordResult:
+def beats_of_source(src: Source, cfg: Config, axis: list[str], mapping=None,
+                    inputs=None) -> RecordResult:
     """Read and process one source, in chunks when it is a long WFDB or EDF/EDF+C record
     (CSV and EDF+D records are read whole). ``inputs``: the
     source's file checksums when the caller has them (files are then not hashed again)."""
     n, fs = record_length(src)
     plan = chunk_plan(n, fs, cfg) if n and fs > 0 else [(0, 0, 0, 0)]
     if len(plan) == 1:
-        return safe_process(lambda: read_source(src, cfg.read, inputs), src.name, cfg, axis,
-                            mapping)
+        return record_result(lambda: read_source(src, cfg.read, inputs), src.name, cfg, axis,
+                             mapping)
     parts = []
     inputs = inputs or source_inputs(src, cfg.read)  # hashed once, not once per chunk
     for lo, a, b, hi in plan:  # one step per chunk
-        res = safe_process(lambda: read_source(src, cfg.read, inputs, sampfrom=lo, sampto=hi),
-                           src.name, cfg, axis, mapping)
+        res = record_result(lambda: read_source(src, cfg.read, inputs, sampfrom=lo, sampto=hi),
+                            src.name, cfg, axis, mapping)
         if res.status == "failed":
             return RecordResult(src.name, "failed", error=f"chunk {a}-{b}: {res.error}")
         parts.append((lo, a, b, _core(lo, a, b, res)))  # drop the overlap at once: bounded memory

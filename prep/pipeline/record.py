@@ -137,8 +137,8 @@ def fill_gaps(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return y, gap
 
 
-def process_record(rec: Record, cfg: Config, axis: list[str],
-                   mapping: dict[str, str] | None = None) -> RecordResult:
+def beats_of_record(rec: Record, cfg: Config, axis: list[str],
+                    mapping: dict[str, str] | None = None) -> RecordResult:
     """Run every stage on one record. Raises :class:`RecordError` for record-level failures.
 
     ``mapping``: symbol -> class overrides (see :func:`prep.stages.labels.load_mapping`).
@@ -512,12 +512,12 @@ def _unknown_across(r, unsure, rr_prev, rr_next, fs):
     return np.where(across_p, np.nan, rr_prev), np.where(across_n, np.nan, rr_next)
 
 
-def safe_process(rec_loader: Callable[[], Record], name: str, cfg: Config,
-                 axis: list[str], mapping: dict[str, str] | None = None) -> RecordResult:
+def record_result(rec_loader: Callable[[], Record], name: str, cfg: Config,
+                  axis: list[str], mapping: dict[str, str] | None = None) -> RecordResult:
     """Read and process one record; any failure becomes a ``failed`` result with a message."""
     try:
         rec = rec_loader()
-        return process_record(rec, cfg, axis, mapping)
+        return beats_of_record(rec, cfg, axis, mapping)
     except BeatmillError as exc:
         return RecordResult(name, "failed", error=str(exc))
     except MemoryError:

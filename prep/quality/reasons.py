@@ -41,7 +41,7 @@ REASONS: dict[str, tuple[str, str]] = {
                                  "labels.train_classes (never moved to another split)"),
     "not_in_split_lists": ("split", "fixed split lists are given and the beat's patient is in none"),
     "amplitude_outlier": ("quality", "robust z-score of the log peak-to-peak amplitude above "
-                                     "quality.amplitude_z_max"),
+                                     "quality.max_amplitude_z"),
     "detector_disagreement": ("quality", "neurokit2's detector finds no beat within 150 ms in any "
                                          "used lead, and the beat is weak (missed by a used lead, "
                                          "or below a typical beat's envelope)"),

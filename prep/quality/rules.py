@@ -87,7 +87,7 @@ def decide(ev: BeatEvidence, q: QualityConfig, wq: WindowsConfig
         (has & (tc < q.exclude_template_corr), reasons, "unlike_neighbours"),
         (has & (tc >= q.exclude_template_corr) & (tc < q.flag_template_corr), flags,
          "unlike_neighbours"),
-        (has & (ev.amplitude_z > q.amplitude_z_max), reasons, "amplitude_outlier"),
+        (has & (ev.amplitude_z > q.max_amplitude_z), reasons, "amplitude_outlier"),
         (has & disagree & weak & q.exclude_detector_disagreement, reasons,
          "detector_disagreement"),
         (has & disagree & ~(weak & q.exclude_detector_disagreement), flags,

@@ -14,8 +14,8 @@ Indices (per lead and window):
 - ``psqi``: power 5-15 Hz over 5-40 Hz; ``bassqi``: 1 - power 0-1 Hz over 0-40 Hz, before baseline
   removal (Li et al. 2008; Clifford et al. 2012);
 - ``bsqi``: agreement of our detector with ``neurokit2``'s within 150 ms, matched over the union;
-- ``line_ratio``: power within 1 Hz of mains and harmonics after the notch, over total;
-- ``hf_ratio``: power above 40 Hz over total (muscle);
+- ``line_share``: power within 1 Hz of mains and harmonics after the notch, over total;
+- ``hf_share``: power above 40 Hz over total (muscle);
 - ``tsqi``: beat-to-beat similarity, after Orphanidou et al. 2015, but each beat is compared with
   the beats of the whole lead that resemble it most (its ``k``-th best correlation), not with one
   average: a window of bigeminy is as similar as a window of sinus beats, noise is not;
@@ -35,8 +35,8 @@ _TSQI_K = 3            # a beat must resemble this many other beats of its lead 
 _TSQI_LIBRARY = 1000   # at most this many beats of the lead, evenly spread, are compared
 _TSQI_POINTS = 64      # points per beat segment (the lead is low-passed at 40 Hz)
 INDEX_COLUMNS = ["fault_fraction", "flat_fraction", "clipped_fraction", "missing_fraction",
-                 "amplitude_mv", "ksqi", "ssqi", "psqi", "bassqi", "bsqi", "line_ratio",
-                 "hf_ratio", "hr_bpm", "max_rr_s", "rr_ratio", "tsqi", "tsqi_average", "n_beats"]
+                 "amplitude_mv", "ksqi", "ssqi", "psqi", "bassqi", "bsqi", "line_share",
+                 "hf_share", "hr_bpm", "max_rr_s", "rr_ratio", "tsqi", "tsqi_average", "n_beats"]
 
 
 def _frames(x: np.ndarray, L: int, fill) -> np.ndarray:
@@ -142,8 +142,8 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
         while k * mains_hz < fs / 2:
             line += _band_power(p, f, k * mains_hz - 1, k * mains_hz + 1)
             k += 1
-    out["line_ratio"] = line / tot
-    out["hf_ratio"] = _band_power(p, f, 40, fs / 2 + 1) / tot if fs / 2 > 40 else np.zeros(n_win)
+    out["line_share"] = line / tot
+    out["hf_share"] = _band_power(p, f, 40, fs / 2 + 1) / tot if fs / 2 > 40 else np.zeros(n_win)
     # bSQI: our detections against the second detector's
     tol = 0.15 * fs
     a_ok, b_ok = _match_counts(ours, other, tol)
@@ -259,12 +259,12 @@ def rhythm_findings(df: pd.DataFrame, cfg: WindowsConfig) -> list[str]:
     """';'-joined rhythm findings of each window (``''`` when none): reported, never graded.
 
     ``rate_out_of_range``: median heart rate outside ``hr_range_bpm``; ``long_rr``: longest RR
-    above ``max_rr_s``; ``irregular_rr``: longest over shortest RR above ``rr_ratio_max``.
+    above ``max_rr_s``; ``irregular_rr``: longest over shortest RR above ``max_rr_ratio``.
     """
     lo_h, hi_h = cfg.hr_range_bpm
     hit = {"rate_out_of_range": (df.hr_bpm < lo_h) | (df.hr_bpm > hi_h),
            "long_rr": df.max_rr_s > cfg.max_rr_s,
-           "irregular_rr": df.rr_ratio > cfg.rr_ratio_max}
+           "irregular_rr": df.rr_ratio > cfg.max_rr_ratio}
     H = pd.DataFrame(hit).to_numpy()
     names = list(hit)
     return [";".join(n for n, b in zip(names, row) if b) for row in H]
@@ -283,13 +283,13 @@ def grade_windows(df: pd.DataFrame, cfg: WindowsConfig) -> tuple[list[str], list
     lo_p, hi_p = cfg.psqi_range
     noisy = {
         "fault_fraction": df.fault_fraction > cfg.noisy_fault_fraction,
-        "ksqi": df.ksqi < cfg.ksqi_min,
+        "ksqi": df.ksqi < cfg.min_ksqi,
         "psqi": (df.psqi < lo_p) | (df.psqi > hi_p),
-        "bassqi": df.bassqi < cfg.bassqi_min,
+        "bassqi": df.bassqi < cfg.min_bassqi,
         "bsqi": df.bsqi.fillna(0) < cfg.bsqi_noisy,
         "tsqi": df.tsqi.fillna(-1) < cfg.tsqi_noisy,
-        "line_ratio": df.line_ratio > cfg.line_ratio_max,
-        "hf_ratio": df.hf_ratio > cfg.hf_ratio_max,
+        "line_share": df.line_share > cfg.max_line_share,
+        "hf_share": df.hf_share > cfg.max_hf_share,
     }
     U = pd.DataFrame(unusable).to_numpy()
     N = pd.DataFrame(noisy).to_numpy()
@@ -314,7 +314,7 @@ def grade_codes(grades) -> np.ndarray:
 
 
 _FAULT_ORDER = ["fault_fraction", "amplitude_mv", "bsqi", "tsqi", "ksqi", "bassqi", "psqi",
-                "hf_ratio", "line_ratio", "hr_bpm", "max_rr_s", "rr_ratio"]
+                "hf_share", "line_share", "hr_bpm", "max_rr_s", "rr_ratio"]
 
 
 def main_fault(w: pd.DataFrame) -> str:

@@ -207,7 +207,7 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
                             f"({cy['records_with_reference']} annotated records)"))
         parts += [f"<p class='caution'>{html.escape(w)}</p>" for w in cy.get("warnings", [])]
     pat = t.groupby(["patient", "split"]).agg(detected=("included", "size"),
-                                             kept=("included", "sum")).reset_index()
+                                              kept=("included", "sum")).reset_index()
     parts.append(_table(pat, "Beats per patient"))
     lt = leads[["record", "lead", "used", "reason"] +
                [c for c in ("usable_share", "main_fault") if c in leads]].copy()

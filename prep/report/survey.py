@@ -9,7 +9,7 @@ import pandas as pd
 from prep.config import Config
 from prep.errors import BeatmillError, ConfigError
 from prep.io.sources import find_sources, read_source
-from prep.pipeline.record import process_record
+from prep.pipeline.record import beats_of_record
 
 _OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt}
 _RULE = re.compile(r"^\s*(?:(?P<lead>[^:<>=\s]+)\s*:)?\s*(?P<what>usable|good)\s*"
@@ -37,7 +37,7 @@ def survey(inputs, cfg: Config) -> tuple[pd.DataFrame, list[tuple[str, str]]]:
     for src in found:
         try:
             rec = read_source(src, cfg.read)
-            res = process_record(rec, cfg, rec.leads)
+            res = beats_of_record(rec, cfg, rec.leads)
         except BeatmillError as exc:
             failed.append((src.name, str(exc)))
             continue

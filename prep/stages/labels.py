@@ -148,4 +148,4 @@ def class_yield(r: np.ndarray, included: np.ndarray, ann, fs: float, window_ms: 
     found = ref_to_row >= 0
     kept = found & included[np.maximum(ref_to_row, 0)]
     return {str(c): {"reference": int((cls == c).sum()), "detected": int((found & (cls == c)).sum()),
-                "kept": int((kept & (cls == c)).sum())} for c in sorted(set(cls))}
+                     "kept": int((kept & (cls == c)).sum())} for c in sorted(set(cls))}

@@ -4,7 +4,7 @@ Detector (per lead), after Pan & Tompkins (1985) in spirit but vectorized:
 
 1. QRS emphasis: zero-phase 5-20 Hz Butterworth band-pass, derivative, squared, 100 ms moving
    average, square root (an amplitude-like energy envelope).
-2. Candidates: envelope peaks at least ``min_rr_ms`` apart (scipy.signal.find_peaks).
+2. Candidates: envelope peaks at least ``refractory_ms`` apart (scipy.signal.find_peaks).
 3. Acceptance: a candidate is a beat when its height exceeds ``threshold`` x the local reference
    (the 80th percentile of the 16 surrounding candidate heights).
 4. Search-back: in an RR gap longer than ``searchback_rr`` x the local median RR, the highest
@@ -94,7 +94,7 @@ def _detect(x, fs: float, cfg: RpeaksConfig):
     if x.ndim != 1:
         raise ValueError(f"detect_lead: one lead expected, got shape {x.shape}")
     env, band = qrs_envelope(x, fs)
-    dist = max(1, int(round(cfg.min_rr_ms * fs / 1000)))
+    dist = max(1, int(round(cfg.refractory_ms * fs / 1000)))
     cand, _ = signal.find_peaks(env, distance=int(round(0.2 * fs)))
     if cand.size == 0 or np.max(env) <= 0:
         return np.zeros(0, np.int64), np.zeros(0), band, np.zeros(x.size)
@@ -315,7 +315,7 @@ def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarr
     accepted = ((2 * n_sup > n_here) | minority_ok) & (n_sup > 0)
     # two accepted beats closer than the refractory period are one beat seen at two places
     # (leads disagree on where R is): keep the better supported one, then the primary's
-    dist = int(round(cfg.min_rr_ms * fs / 1000))
+    dist = int(round(cfg.refractory_ms * fs / 1000))
     for _ in range(3):
         ai = np.flatnonzero(accepted)
         close = np.flatnonzero(np.diff(r[ai]) < dist)
@@ -380,7 +380,7 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
     """Detect and refine beats in every usable lead of ``x`` (n_leads, n_samples)."""
     x = as_signal(x, fs, "detect_leads", min_samples=8)
     out = []
-    dist = max(1, int(round(cfg.min_rr_ms * fs / 1000)))
+    dist = max(1, int(round(cfg.refractory_ms * fs / 1000)))
     for j in np.flatnonzero(usable):
         p, c, band, energy = _detect(x[j], fs, cfg)
         r, pol = refine_r(x[j], p, fs, cfg.refine_window_ms)
