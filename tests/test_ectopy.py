@@ -15,8 +15,8 @@ from prep.demo import _beat_wave
 from prep.io.wfdb import read_wfdb
 from prep.model import Annotations, Record
 from prep.pipeline.record import beats_of_record
-from prep.stages.rpeaks import between_beats
-from prep.stages.rpeaks import fuse as fuse_det
+from prep.stages._fusion import LeadEvidence, between_beats
+from prep.stages._fusion import fuse as fuse_det
 
 from .conftest import ref_path
 
@@ -129,8 +129,10 @@ def test_fusion_judges_a_minority_beat_from_the_signal():
     def accepted(clean0, energy1, conf0=1.3):
         c = [np.full(r0.size, conf0), conf[1]]
         e = [np.ones(3000), np.full(3000, energy1)]
-        f = fuse_det([r0, r1], c, q, fs, clean=[np.full(3, clean0), np.ones(3, bool)], energy=e,
-                     window_ok=[np.ones(3, bool)] * 2, window_len=L)
+        cl = [np.full(3, clean0), np.ones(3, bool)]
+        f = fuse_det([LeadEvidence(p, c[j], q[j], window_ok=np.ones(3, bool), clean=cl[j],
+                                   energy=e[j]) for j, p in enumerate((r0, r1))], fs,
+                     window_len=L)
         return bool(f.accepted[np.flatnonzero(f.r == 1550)[0]])
     assert accepted(True, 0.5)             # clean and strong where seen, energy in lead 1
     assert not accepted(True, 0.05)        # lead 1 clean there and holds no QRS energy

@@ -14,7 +14,7 @@ CORE = {"prep", "prep.errors", "prep.model", "prep.config", "prep.leads", "prep.
 
 # subpackage (or top-level module) -> what its modules may import besides the core
 ALLOWED = {
-    "stages": {"stages._checks", "stages._design"},   # never another stage
+    "stages": {"stages"},   # only the shared helpers stages._*, never another stage (below)
     "io": {"io"},
     "quality": {"quality"},
     "pipeline": {"io", "stages", "quality", "pipeline"},

@@ -25,11 +25,11 @@ from scipy import ndimage, signal
 from prep.config import RpeaksConfig
 from prep.model import StageLog
 from prep.stages._checks import as_signal
+from prep.stages._fusion import (PRUNE_RR, QUALITY_WINDOW_S, Fused, LeadEvidence, fuse,
+                                 primary_lead, running_median)
 
 _REF_CANDIDATES = 16      # candidates in the local reference (common practice, no source)
 _REF_QUANTILE = 0.8       # reference = this quantile of candidate heights (tuned, docs/rpeaks.md)
-_PRUNE_RR = 1.4           # pruning rule above (tuned, docs/rpeaks.md)
-_QUALITY_WINDOW_S = 10.0  # local-quality window for fusion (common SQI window length)
 
 
 def qrs_envelope(x: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray]:
@@ -51,10 +51,6 @@ def _sparse_refractory(pos: np.ndarray, height: np.ndarray, dist: int) -> np.nda
     z[pos + 1] = height
     keep, _ = signal.find_peaks(z, distance=max(1, dist))
     return keep - 1
-
-
-def _running_median(v: np.ndarray, n: int) -> np.ndarray:
-    return pd.Series(v).rolling(n, center=True, min_periods=1).median().to_numpy()
 
 
 def detect_lead(x, fs: float, cfg: RpeaksConfig = RpeaksConfig()):
@@ -107,7 +103,7 @@ def _detect(x, fs: float, cfg: RpeaksConfig):
         if acc.size < 3:
             break
         rr = np.diff(acc)
-        med = _running_median(rr, 9)
+        med = running_median(rr, 9)
         gaps = np.flatnonzero(rr > cfg.searchback_rr * med)
         if gaps.size == 0:
             break
@@ -128,10 +124,10 @@ def _detect(x, fs: float, cfg: RpeaksConfig):
         if acc.size < 4:
             break
         rr = np.diff(acc)
-        med = _running_median(rr, 9)
+        med = running_median(rr, 9)
         he = env[acc]
         weak = (he[1:-1] < he[:-2]) & (he[1:-1] < he[2:])
-        bad = np.flatnonzero(weak & (rr[:-1] + rr[1:] < _PRUNE_RR * med[1:])) + 1
+        bad = np.flatnonzero(weak & (rr[:-1] + rr[1:] < PRUNE_RR * med[1:])) + 1
         if bad.size == 0:
             break
         bad = bad[np.r_[True, np.diff(bad) > 1]]
@@ -170,7 +166,7 @@ def refine_r(x: np.ndarray, peaks: np.ndarray, fs: float, window_ms: float) -> t
 
 
 def window_template_quality(band: np.ndarray, peaks: np.ndarray, fs: float,
-                            window_s: float = _QUALITY_WINDOW_S) -> np.ndarray:
+                            window_s: float = QUALITY_WINDOW_S) -> np.ndarray:
     """Median correlation of the beats in each window with the lead's QRS template (+-100 ms).
 
     One value per ``window_s`` window of the record (NaN where the window holds no beat):
@@ -190,175 +186,6 @@ def window_template_quality(band: np.ndarray, peaks: np.ndarray, fs: float,
     win = (p / (window_s * fs)).astype(np.int64)
     med = pd.Series(c).groupby(win).median()
     out[med.index.to_numpy()] = med.to_numpy()
-    return out
-
-
-def _primary(quality: list[np.ndarray]) -> int:
-    """Index of the lead with the best median window quality (ties: the first)."""
-    if not quality:
-        return 0
-    med = [np.nanmedian(q) if np.isfinite(q).any() else -1.0 for q in quality]
-    return int(np.argmax(med))
-
-
-@dataclass
-class Fused:
-    """Beats after fusion. ``support[i, j]``: lead j saw beat i; ``accepted``: fusion kept it."""
-
-    r: np.ndarray
-    support: np.ndarray
-    confidence: np.ndarray
-    accepted: np.ndarray
-    r_lead: np.ndarray
-    unusable: np.ndarray | None = None  # seen only in unusable stretches
-    between: np.ndarray | None = None   # a minority detection inside one cardiac cycle
-
-
-def fuse(peaks: list[np.ndarray], conf: list[np.ndarray], quality: list[np.ndarray], fs: float,
-         cfg: RpeaksConfig = RpeaksConfig(), window_s: float = _QUALITY_WINDOW_S,
-         valid: list[np.ndarray] | None = None, window_ok: list[np.ndarray] | None = None,
-         window_len: int | None = None, clean: list[np.ndarray] | None = None,
-         energy: list[np.ndarray] | None = None) -> Fused:
-    """Fuse per-lead detections (refined R positions) of the usable leads into one beat list.
-
-    A beat seen by a strict majority of the leads is accepted. A beat seen by fewer is accepted
-    only when a lead that saw it is locally trusted: the primary lead (best median window quality)
-    where its window quality reaches ``min_lead_template_corr``, or another lead where it reaches
-    that and the primary does not. Rejected beats keep their row (reason ``one_lead_only``).
-
-    ``valid`` (one bool array per lead, per detection): detections in unusable stretches. They
-    still form beats, but give no support; a beat with no valid support is not accepted and is
-    marked ``unusable``. ``window_ok`` (one bool array per lead, per quality window of
-    ``window_len`` samples): where a lead is unusable it is neither trusted nor counted in the
-    majority, so the leads usable there decide.
-
-    ``clean`` (per lead, per window: graded good by the noise tests) and ``energy`` (per lead,
-    per sample: QRS energy over the local reference, from the detector) judge a minority beat
-    from the signal, whatever its shape: a lead that is clean where it saw the beat with at
-    least a typical beat's QRS energy (confidence >= 1) also trusts it, and a beat is refused when a lead that is clean there and did not see it holds
-    no QRS energy at all at that time (below ``searchback_threshold``, the least the detector
-    ever takes for a beat): a real heartbeat shows in every lead, if weakly; an artifact in one
-    lead does not.
-    """
-    n_leads = len(peaks)
-    if n_leads == 0 or sum(p.size for p in peaks) == 0:
-        z = np.zeros(0, np.int64)
-        return Fused(z, np.zeros((0, n_leads), bool), np.zeros(0), np.zeros(0, bool), z)
-    q = np.vstack(quality)  # (n_leads, n_windows)
-    primary = _primary(quality)
-    tol = int(round(cfg.fuse_window_ms * fs / 1000))
-    order = [primary] + [j for j in range(n_leads) if j != primary]
-    # clusters: anchored on the primary lead, the others matched to the nearest anchor in tol
-    pos_all = np.concatenate([peaks[j] for j in order])
-    lead_all = np.concatenate([np.full(peaks[j].size, j) for j in order])
-    conf_all = np.concatenate([conf[j] for j in order])
-    valid_all = (np.concatenate([valid[j] for j in order]) if valid is not None
-                 else np.ones(pos_all.size, bool))
-    srt = np.argsort(pos_all, kind="stable")
-    pos_s, lead_s, conf_s = pos_all[srt], lead_all[srt], conf_all[srt]
-    valid_s = valid_all[srt]
-    new = np.r_[True, np.diff(pos_s) > tol]
-    cid = np.cumsum(new) - 1
-    # a cluster that holds two detections of one lead is split at the gap between them
-    dup = np.r_[False, (lead_s[1:] == lead_s[:-1]) & (cid[1:] == cid[:-1])]
-    if dup.any():
-        new = new | dup
-        cid = np.cumsum(new) - 1
-    n_c = int(cid[-1]) + 1
-    seen = np.zeros((n_c, n_leads), bool)
-    seen[cid, lead_s] = True
-    support = np.zeros((n_c, n_leads), bool)
-    support[cid[valid_s], lead_s[valid_s]] = True
-    best = np.zeros(n_c)
-    np.maximum.at(best, cid, conf_s)
-    conf_m = np.zeros((n_c, n_leads))  # each lead's detector confidence for each beat
-    np.maximum.at(conf_m, (cid, lead_s), conf_s)
-    # the R of a cluster: from the primary lead if it saw the beat, else the first lead in order
-    rank = np.empty(n_leads, np.int64)
-    rank[order] = np.arange(n_leads)
-    key = rank[lead_s]
-    pick = np.lexsort((key, cid))
-    first = pick[np.r_[True, cid[pick][1:] != cid[pick][:-1]]]
-    r = pos_s[first]
-    r_lead = lead_s[first]
-    n_sup = support.sum(1)
-    win = np.clip((r / (window_s * fs)).astype(np.int64), 0, q.shape[1] - 1)
-    qw = np.nan_to_num(q[:, win].T, nan=-1.0)  # (n_c, n_leads)
-    good = qw >= cfg.min_lead_template_corr
-    n_here = np.full(n_c, n_leads)
-    if window_ok is not None and window_len:
-        ok_m = np.column_stack([w[np.clip(r // window_len, 0, w.size - 1)] for w in window_ok])
-        good &= ok_m
-        n_here = np.maximum(ok_m.sum(axis=1), 1)
-    trusted = np.zeros_like(good)
-    trusted[:, primary] = good[:, primary]
-    others = [j for j in range(n_leads) if j != primary]
-    if others:
-        trusted[:, others] = good[:, others] & ~good[:, [primary]]
-    minority_ok = (support & trusted).any(1)
-    contradicted = np.zeros(n_c, bool)
-    clean_strong = np.zeros(n_c, bool)
-    unsure = n_sup < n_here  # a minority beat
-    if clean is not None and energy is not None and window_len:
-        cl = np.column_stack([c[np.clip(r // window_len, 0, c.size - 1)] for c in clean])
-        if window_ok is not None:
-            cl &= ok_m
-        e = np.column_stack([en[np.clip(r, 0, en.size - 1)] for en in energy])
-        contradicted = (cl & ~seen & (e < cfg.searchback_threshold)).any(1)
-        clean_strong = (support & cl & (conf_m >= 1.0)).any(1)
-        unsure = unsure | ~(support & cl).any(1)  # or no lead that saw it is clean there
-        # trust in a lead's template quality alone holds only where no other usable lead is
-        # clean there (it then cannot confirm); next to a clean lead that did not see it, a
-        # beat must be clean and strong where it was seen
-        other_clean = (cl & ~seen).any(1)
-        minority_ok = (((support & trusted).any(1) & ~other_clean) | clean_strong) & ~contradicted
-    accepted = ((2 * n_sup > n_here) | minority_ok) & (n_sup > 0)
-    # two accepted beats closer than the refractory period are one beat seen at two places
-    # (leads disagree on where R is): keep the better supported one, then the primary's
-    dist = int(round(cfg.refractory_ms * fs / 1000))
-    for _ in range(3):
-        ai = np.flatnonzero(accepted)
-        close = np.flatnonzero(np.diff(r[ai]) < dist)
-        if close.size == 0:
-            break
-        a_, b_ = ai[close], ai[close + 1]
-        wa = n_sup[a_] * 2 + support[a_, primary]
-        wb = n_sup[b_] * 2 + support[b_, primary]
-        drop = np.where(wa > wb, b_, np.where(wb > wa, a_, np.where(best[a_] >= best[b_], b_, a_)))
-        accepted[drop] = False
-    between = between_beats(r, accepted, unsure & ~clean_strong)
-    accepted &= ~between
-    return Fused(r.astype(np.int64), seen, best, accepted, r_lead.astype(np.int64),
-                 unusable=n_sup == 0, between=between)
-
-
-def between_beats(r: np.ndarray, accepted: np.ndarray, minority: np.ndarray) -> np.ndarray:
-    """Accepted minority detections that sit inside one cardiac cycle of their neighbours.
-
-    A detection that not every usable lead saw, whose two accepted neighbours are no further
-    apart than ``_PRUNE_RR`` x the local median RR (the detector's own pruning rule), adds a
-    complex where the rhythm leaves no room for one: the beats before and after make a normal
-    cycle together. Ectopic beats are not of that kind: a ventricular beat is followed by a
-    compensatory pause and an atrial premature beat resets the cycle, so their neighbours are
-    1.5 to 2 cycles apart. Returns a bool per detection (True: not a heartbeat).
-
-    >>> r = np.array([0, 100, 150, 200, 300, 400])
-    >>> between_beats(r, np.ones(6, bool), np.array([0, 0, 1, 0, 0, 0], bool)).tolist()
-    [False, False, True, False, False, False]
-    """
-    out = np.zeros(r.size, bool)
-    for _ in range(2):  # a second pass sees neighbours the first one left
-        ai = np.flatnonzero(accepted & ~out)
-        if ai.size < 4:
-            break
-        rr = np.diff(r[ai]).astype(float)
-        med = _running_median(rr, 9)
-        span = r[ai[2:]] - r[ai[:-2]]
-        hit = np.flatnonzero(minority[ai[1:-1]] & (span < _PRUNE_RR * med[1:])) + 1
-        hit = hit[np.r_[True, np.diff(hit) > 1]] if hit.size else hit
-        if hit.size == 0:
-            break
-        out[ai[hit]] = True
     return out
 
 
@@ -407,9 +234,13 @@ def fuse_leads(dets: list[LeadDetections], n_leads: int, fs: float,
     log = StageLog("rpeaks", params={k: getattr(cfg, k) for k in cfg.__dataclass_fields__})
     for d in dets:
         log.counts[f"detections_{names[d.lead]}"] = int(d.r.size)
-    fused = fuse([d.r for d in dets], [d.conf for d in dets], [d.quality for d in dets], fs, cfg,
-                 valid=valid, window_ok=window_ok, window_len=window_len, clean=clean,
-                 energy=None if clean is None else [d.energy for d in dets])
+    evidence = [LeadEvidence(d.r, d.conf, d.quality,
+                             valid=None if valid is None else valid[i],
+                             window_ok=None if window_ok is None else window_ok[i],
+                             clean=None if clean is None else clean[i],
+                             energy=None if clean is None else d.energy)
+                for i, d in enumerate(dets)]
+    fused = fuse(evidence, fs, cfg, window_len=window_len)
     full = np.zeros((fused.r.size, n_leads), bool)
     if idx.size:
         full[:, idx] = fused.support
@@ -417,7 +248,7 @@ def fuse_leads(dets: list[LeadDetections], n_leads: int, fs: float,
     unusable = fused.unusable if fused.unusable is not None else np.zeros(fused.r.size, bool)
     fused = Fused(fused.r, full, fused.confidence, fused.accepted, lead_of, unusable,
                   fused.between if fused.between is not None else np.zeros(fused.r.size, bool))
-    primary = _primary([d.quality for d in dets])
+    primary = primary_lead([d.quality for d in dets])
     log.derived["polarity"] = {names[d.lead]: d.polarity for d in dets}
     log.derived["primary_lead"] = names[int(idx[primary])] if idx.size else None
     log.derived["lead_quality_median"] = {
