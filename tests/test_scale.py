@@ -102,7 +102,7 @@ def test_chunked_and_unchunked_runs_agree():
 
     from prep.config import Config
     from prep.io.sources import Source
-    from prep.pipeline.chunks import chunk_plan, beats_of_source
+    from prep.pipeline.chunks import beats_of_source, chunk_plan
 
     from .conftest import ref_path
     base = ref_path("mitdb", "100")
@@ -171,7 +171,7 @@ def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
     import pandas as pd
 
     from prep.config import Config
-    from prep.dataset.assemble import assemble
+    from prep.dataset.assemble import Provenance, assemble
     from prep.dataset.run import resolve_extras
     from prep.dataset.shards import read_shard
     from prep.dataset.view import open_dataset
@@ -191,7 +191,7 @@ def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
     assert [r.n_beats for r in lazy] == [r.n_beats for r in full]
     cfg = Config()
     mapping, pmap, extra = resolve_extras(cfg)
-    args = (cfg, man["lead_axis"], [], [], mapping, pmap, extra)
+    args = (cfg, man["lead_axis"], Provenance([], [], mapping, pmap, extra))
     a = assemble(full, *args)
     ds = open_dataset(out)
     pd.testing.assert_frame_equal(a.table.reset_index(drop=True), ds.table, check_dtype=False)
@@ -216,7 +216,7 @@ def test_kept_summary_and_rule_shortcut_agree_with_the_rules():
     import numpy as np
     import pandas as pd
 
-    from prep.dataset.assemble import rule_reasons, rules_apply
+    from prep.dataset.plan import rule_reasons, rules_apply
     from prep.dataset.shards import kept_summary
     b = pd.DataFrame({"included": [True, False, True, True], "class": ["N", "V", None, "V"],
                       "r_sample": [10, 20, 30, 40], "tensor_index": [0, -1, 1, 2]})

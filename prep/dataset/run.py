@@ -13,7 +13,7 @@ from typing import Callable
 import numpy as np
 
 from prep.config import Config
-from prep.dataset.assemble import Assembled, assemble, write_assembled
+from prep.dataset.assemble import Assembled, Provenance, assemble, write_assembled
 from prep.dataset.execute import execute, n_workers, start_pool
 from prep.dataset.export import NpyWriter
 from prep.dataset.folder import prepare_out, swap_in
@@ -127,8 +127,9 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
                 return np.zeros(shape, dtype)
             return NpyWriter(staging / name, shape, dtype)
 
-        a = assemble(results, cfg, axis, [str(s) for s in sources], [str(s.path) for s in found],
-                     mapping, pmap, extra, alloc=alloc, tables_to=staging)
+        prov = Provenance([str(s) for s in sources], [str(s.path) for s in found], mapping, pmap,
+                          extra)
+        a = assemble(results, cfg, axis, prov, alloc=alloc, tables_to=staging)
         write_assembled(staging, a)
         swap_in(staging, out)
     finally:

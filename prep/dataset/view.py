@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from prep.config import Config
-from prep.dataset.assemble import Assembled, assemble
+from prep.dataset.assemble import Assembled, Provenance, assemble
 from prep.dataset.run import resolve_extras
 from prep.errors import BeatmillError
 from prep.io._files import check_rate
@@ -79,7 +79,8 @@ def process(signals, fs: float, *, leads: list[str] | None = None, config: Confi
         check_rate(float(fs), f"<{name}>")
         return rec
     res = record_result(load, name, cfg, axis, mapping)
-    return assemble([res], cfg, axis, [f"<{name}>"], [f"<{name}>"], mapping, pmap, extra)
+    return assemble([res], cfg, axis, Provenance([f"<{name}>"], [f"<{name}>"], mapping, pmap,
+                                                  extra))
 
 
 class Dataset:
