@@ -37,9 +37,9 @@ import numpy as np  # noqa: E402
 
 from prep.config import Config  # noqa: E402
 from prep.evaluate import Score, match_beats  # noqa: E402
-from prep.pipeline.record import beats_of_record  # noqa: E402
 from prep.io.wfdb import read_wfdb
 from prep.model import BEAT_SYMBOLS  # noqa: E402
+from prep.pipeline.record import beats_of_record  # noqa: E402
 
 ACCURACY = [("mitdb", r) for r in ("100", "105", "119")] + \
            [("svdb", r) for r in ("800", "801", "802", "803", "804")] + \
@@ -49,9 +49,9 @@ SPEED = [("mitdb", r) for r in ("100", "105", "119")]
 
 def _stage_beats(r, cfg: Config) -> np.ndarray:
     """Fused beats of the R-peak stage alone on the filtered record (as the tests score it)."""
+    from prep.pipeline.signals import fill_gaps
     from prep.stages.bandpass import bandpass
     from prep.stages.baseline import remove_baseline
-    from prep.pipeline.record import fill_gaps
     from prep.stages.powerline import remove_powerline
     from prep.stages.rpeaks import detect_beats
     x, _ = fill_gaps(r.signals)

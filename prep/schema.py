@@ -1,10 +1,25 @@
-"""The beat table's columns and their types, in one place (writers, readers and checks use it).
+"""A dataset folder's file names and the beat table's columns and types, in one place (writers,
+readers, checks and the report use it).
 
 Meanings of every column: docs/outputs.md (a test keeps the page in step with the files).
 """
 from __future__ import annotations
 
 import pandas as pd
+
+#: the files of a dataset folder
+BEATS_NPY = "beats.npy"              # (n_kept, n_leads, n_samples) float32, normalized
+LEAD_MASK_NPY = "lead_mask.npy"      # (n_kept, n_leads) bool
+NORM_CENTER_NPY = "norm_center.npy"  # (n_kept, n_leads) float32
+NORM_SCALE_NPY = "norm_scale.npy"    # (n_kept, n_leads) float32
+BEATS_TABLE = "beats.parquet"        # one row per detected beat
+LEADS_TABLE = "leads.parquet"        # one row per record and lead
+RECORDS_TABLE = "records.parquet"    # one row per record
+WINDOWS_TABLE = "windows.parquet"    # one row per record, lead and quality window
+MANIFEST = "manifest.json"           # provenance, written last, with every file's SHA-256
+REPORT = "report.html"               # beatmill report (not part of the dataset's checksums)
+TENSOR_FILES = (BEATS_NPY, LEAD_MASK_NPY, NORM_CENTER_NPY, NORM_SCALE_NPY)
+TABLE_FILES = (BEATS_TABLE, LEADS_TABLE, RECORDS_TABLE, WINDOWS_TABLE)
 
 #: beats.parquet columns written per record, in order, with their pandas/Arrow types
 #: (consolidation adds ``patient`` and ``split``)

@@ -23,6 +23,7 @@ except ImportError as exc:  # pragma: no cover - exercised where torch is absent
     raise ImportError("prep.torch needs PyTorch: pip install 'beatmill[torch]'") from exc
 
 from prep.dataset.view import open_dataset
+from prep.schema import BEATS_NPY, LEAD_MASK_NPY
 
 
 class BeatDataset(_TorchDataset):
@@ -45,8 +46,8 @@ class BeatDataset(_TorchDataset):
         self._mask = None
 
     def _open(self) -> None:
-        self._beats = np.load(self.run_dir / "beats.npy", mmap_mode="c")[self._start:self._stop]
-        self._mask = np.load(self.run_dir / "lead_mask.npy", mmap_mode="c")[self._start:self._stop]
+        self._beats = np.load(self.run_dir / BEATS_NPY, mmap_mode="c")[self._start:self._stop]
+        self._mask = np.load(self.run_dir / LEAD_MASK_NPY, mmap_mode="c")[self._start:self._stop]
 
     def __len__(self) -> int:
         return self._stop - self._start

@@ -8,11 +8,11 @@ import pytest
 
 from prep.config import Config
 from prep.dataset.check import check_dataset
-from prep.dataset.export import TABLE_FILES, TENSOR_FILES
 from prep.dataset.run import run
 from prep.demo import write_demo
 from prep.errors import EXIT_NONE_USABLE, EXIT_OK, EXIT_SOME_FAILED
 from prep.evaluate import match_beats
+from prep.schema import TABLE_FILES, TENSOR_FILES
 
 from .conftest import DEMO, ref_path
 

@@ -10,8 +10,8 @@ import time
 import pytest
 
 from prep.dataset.check import check_dataset
-from prep.dataset.export import TABLE_FILES, TENSOR_FILES
 from prep.dataset.run import run
+from prep.schema import TABLE_FILES, TENSOR_FILES
 
 from .conftest import DEMO, ROOT
 

@@ -10,8 +10,7 @@ import numpy as np
 import pandas as pd
 
 from prep.config import Config
-from prep.dataset.export import (MANIFEST, TABLE_FILES, TENSOR_FILES, NpyWriter, write_manifest,
-                                 write_npy, write_parquet)
+from prep.dataset.export import NpyWriter, write_manifest, write_npy, write_parquet
 from prep.dataset.manifest import build_manifest, class_yield
 from prep.dataset.plan import final_rows, plan_dataset
 from prep.dataset.sinks import columns_of
@@ -19,7 +18,10 @@ from prep.dataset.stats import BATCH, lead_stats
 from prep.dataset.tables import leads_table, records_table, tabulate
 from prep.errors import EXIT_NONE_USABLE, EXIT_OK, EXIT_SOME_FAILED
 from prep.io._files import sha256_file
-from prep.pipeline.record import RecordResult
+from prep.pipeline.result import RecordResult
+from prep.schema import (BEATS_NPY, BEATS_TABLE, LEAD_MASK_NPY, LEADS_TABLE, MANIFEST,
+                         NORM_CENTER_NPY, NORM_SCALE_NPY, RECORDS_TABLE, TABLE_FILES, TENSOR_FILES,
+                         WINDOWS_TABLE)
 from prep.stages.normalize import apply_stats, normalize
 
 log = logging.getLogger("prep")
@@ -102,16 +104,16 @@ def write_assembled(out: Path, a: Assembled) -> None:
     Tensors and tables already streamed into ``out`` (see :func:`assemble`) are closed, not
     copied."""
     known = {}  # SHA-256 of tensors hashed while they were written
-    for name, arr in (("beats.npy", a.beats), ("lead_mask.npy", a.lead_mask),
-                      ("norm_center.npy", a.norm_center), ("norm_scale.npy", a.norm_scale)):
+    for name, arr in ((BEATS_NPY, a.beats), (LEAD_MASK_NPY, a.lead_mask),
+                      (NORM_CENTER_NPY, a.norm_center), (NORM_SCALE_NPY, a.norm_scale)):
         if isinstance(arr, NpyWriter) and arr.path.resolve() == (out / name).resolve():
             arr.close()
             if arr.sha256:
                 known[name] = arr.sha256
         else:
             write_npy(out / name, arr)
-    for name, df in (("beats.parquet", a.table), ("leads.parquet", a.leads),
-                     ("records.parquet", a.records), ("windows.parquet", a.windows)):
+    for name, df in ((BEATS_TABLE, a.table), (LEADS_TABLE, a.leads),
+                     (RECORDS_TABLE, a.records), (WINDOWS_TABLE, a.windows)):
         if df is not None:
             write_parquet(out / name, df)
         elif not (out / name).exists():
@@ -129,10 +131,10 @@ def _gather_normalized(results: list[RecordResult], order: list[tuple[int, str]]
     shard rows in tensor order). Dataset statistics come from the training split."""
     m, scope = cfg.normalize.method, cfg.normalize.scope
     n_ax, n_s = shape
-    tensor = alloc("beats.npy", (n, n_ax, n_s), np.float32)
-    mask = alloc("lead_mask.npy", (n, n_ax), np.bool_)
-    center = alloc("norm_center.npy", (n, n_ax), np.float32)
-    scale = alloc("norm_scale.npy", (n, n_ax), np.float32)
+    tensor = alloc(BEATS_NPY, (n, n_ax, n_s), np.float32)
+    mask = alloc(LEAD_MASK_NPY, (n, n_ax), np.bool_)
+    center = alloc(NORM_CENTER_NPY, (n, n_ax), np.float32)
+    scale = alloc(NORM_SCALE_NPY, (n, n_ax), np.float32)
 
     def rows(arr, li, dtype):
         # a memory-mapped shard is mapped afresh and unmapped after the read: pages touched

@@ -6,9 +6,9 @@ from pathlib import Path
 
 import numpy as np
 
-from prep.dataset.export import MANIFEST, TABLE_FILES, TENSOR_FILES
 from prep.io._files import sha256_file
-from prep.schema import BEAT_COLUMNS
+from prep.schema import (BEAT_COLUMNS, BEATS_NPY, BEATS_TABLE, LEAD_MASK_NPY, MANIFEST,
+                         NORM_CENTER_NPY, NORM_SCALE_NPY, RECORDS_TABLE, TABLE_FILES, TENSOR_FILES)
 
 
 def check_dataset(run_dir: str | Path) -> list[str]:
@@ -36,12 +36,12 @@ def check_dataset(run_dir: str | Path) -> list[str]:
     if problems:
         return problems
     try:
-        beats = np.load(d / "beats.npy", mmap_mode="r")
-        mask = np.load(d / "lead_mask.npy", mmap_mode="r")
-        center = np.load(d / "norm_center.npy", mmap_mode="r")
-        scale = np.load(d / "norm_scale.npy", mmap_mode="r")
-        table = pd.read_parquet(d / "beats.parquet")
-        records = pd.read_parquet(d / "records.parquet")
+        beats = np.load(d / BEATS_NPY, mmap_mode="r")
+        mask = np.load(d / LEAD_MASK_NPY, mmap_mode="r")
+        center = np.load(d / NORM_CENTER_NPY, mmap_mode="r")
+        scale = np.load(d / NORM_SCALE_NPY, mmap_mode="r")
+        table = pd.read_parquet(d / BEATS_TABLE)
+        records = pd.read_parquet(d / RECORDS_TABLE)
     except Exception as exc:
         return [f"{d}: cannot load the dataset files ({type(exc).__name__}: {exc})"]
     axis = manifest.get("lead_axis", [])
@@ -54,8 +54,8 @@ def check_dataset(run_dir: str | Path) -> list[str]:
                         f"{manifest.get('tensor', {}).get('shape')}")
     if beats.ndim == 3 and beats.shape[1] != len(axis):
         problems.append(f"beats.npy: {beats.shape[1]} leads but the lead axis names {len(axis)}")
-    for name, arr, dt in (("lead_mask.npy", mask, np.bool_), ("norm_center.npy", center, np.float32),
-                          ("norm_scale.npy", scale, np.float32)):
+    for name, arr, dt in ((LEAD_MASK_NPY, mask, np.bool_), (NORM_CENTER_NPY, center, np.float32),
+                          (NORM_SCALE_NPY, scale, np.float32)):
         if arr.shape != (n, len(axis)) or arr.dtype != dt:
             problems.append(f"{name}: expected shape ({n}, {len(axis)}) {np.dtype(dt)}, got "
                             f"{arr.shape} {arr.dtype}")
@@ -98,7 +98,7 @@ def _check_splits_and_labels(table, records, manifest: dict, n: int) -> list[str
     from prep.stages.labels import beat_classes
 
     out: list[str] = []
-    for name, t in (("beats.parquet", table), ("records.parquet", records)):
+    for name, t in ((BEATS_TABLE, table), (RECORDS_TABLE, records)):
         if "patient" not in t or "split" not in t:
             out.append(f"{name}: missing patient/split columns")
             return out

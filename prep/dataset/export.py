@@ -13,12 +13,6 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-TENSOR_FILES = ("beats.npy", "lead_mask.npy", "norm_center.npy", "norm_scale.npy")
-TABLE_FILES = ("beats.parquet", "leads.parquet", "records.parquet", "windows.parquet")
-MANIFEST = "manifest.json"
-
-
-
 
 def _atomic(path: Path, write) -> None:
     """Write through a temporary file in the same folder, then rename over ``path``."""

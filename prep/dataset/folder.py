@@ -7,8 +7,8 @@ import os
 import shutil
 from pathlib import Path
 
-from prep.dataset.export import MANIFEST, TABLE_FILES, TENSOR_FILES
 from prep.errors import ConfigError
+from prep.schema import MANIFEST, TABLE_FILES, TENSOR_FILES
 
 log = logging.getLogger("prep")
 

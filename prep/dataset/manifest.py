@@ -12,7 +12,8 @@ from prep.dataset.export import environment
 from prep.dataset.plan import Plan
 from prep.dataset.split import SPLITS
 from prep.dataset.tables import Tables
-from prep.pipeline.record import RecordResult
+from prep.pipeline.result import RecordResult
+from prep.schema import BEATS_NPY
 from prep.stages.labels import AAMI_CLASSES, UNLABELED
 
 
@@ -31,7 +32,7 @@ def build_manifest(results: list[RecordResult], cfg: Config, axis: list[str], pr
         "resolved_files": prov.extra,
         "environment": environment(),
         "lead_axis": axis,
-        "tensor": {"file": "beats.npy", "shape": list(tensor_shape), "dtype": "float32",
+        "tensor": {"file": BEATS_NPY, "shape": list(tensor_shape), "dtype": "float32",
                    "order": "C", "axes": ["beat", "lead", "sample"],
                    "row_order": "split (train, val, test), then patient, record and time",
                    "normalization": {"method": cfg.normalize.method, "scope": cfg.normalize.scope,

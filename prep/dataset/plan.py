@@ -11,7 +11,7 @@ from prep.config import Config
 from prep.dataset.shards import kept_summary
 from prep.dataset.sinks import columns_of
 from prep.dataset.split import SPLITS, assign_patients, fixed_assignment, patient_of
-from prep.pipeline.record import RecordResult
+from prep.pipeline.result import RecordResult
 
 _SPLIT_RANK = {"train": 0, "val": 1, "test": 2}
 

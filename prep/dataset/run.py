@@ -22,7 +22,7 @@ from prep.dataset.split import load_patient_map
 from prep.errors import ConfigError
 from prep.io.sources import Source, find_sources, source_inputs, source_leads
 from prep.leads import default_axis, resolve_axis
-from prep.pipeline.record import RecordResult
+from prep.pipeline.result import RecordResult
 from prep.stages.labels import load_mapping
 
 log = logging.getLogger("prep")

@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from prep.model import StageLog
-from prep.pipeline.record import RecordResult
+from prep.pipeline.result import RecordResult
 
 COMMIT = "COMMIT.json"
 _FILES = ("tensor.npy", "mask.npy", "beats.arrow", "leads.arrow", "windows.arrow",

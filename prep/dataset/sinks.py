@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from prep.pipeline.record import RecordResult
+from prep.pipeline.result import RecordResult
 from prep.schema import BEAT_COLUMNS, BEAT_TYPES
 
 log = logging.getLogger("prep")

@@ -12,9 +12,9 @@ import pandas as pd
 from prep.dataset.plan import Plan, final_rows
 from prep.dataset.sinks import ParquetRows, Rows, beats_arrow, beats_schema, windows_arrow
 from prep.dataset.split import SPLITS
-from prep.pipeline.record import RecordResult
+from prep.pipeline.result import RecordResult
 from prep.quality import reasons as reasons_mod
-from prep.schema import empty_beats
+from prep.schema import BEATS_TABLE, WINDOWS_TABLE, empty_beats
 
 _WINDOW_COLUMNS = ["record", "lead", "start", "end", "grade", "decided_by"]  # of an empty table
 _LEAD_COLUMNS = ("record", "lead", "source_name", "used", "reason", "in_axis")
@@ -38,8 +38,8 @@ def tabulate(results: list[RecordResult], plan: Plan, tables_to: Path | None) ->
     import pyarrow as pa
     import pyarrow.compute as pc
     schema_b = beats_schema()
-    sink_b = ParquetRows(tables_to / "beats.parquet", schema_b) if tables_to else Rows()
-    sink_w = ParquetRows(tables_to / "windows.parquet") if tables_to else Rows()
+    sink_b = ParquetRows(tables_to / BEATS_TABLE, schema_b) if tables_to else Rows()
+    sink_w = ParquetRows(tables_to / WINDOWS_TABLE) if tables_to else Rows()
     reason_counts: dict[str, int] = {}
     split_classes: dict[str, dict[str, int]] = {s: {} for s in SPLITS}
     n_beats = 0

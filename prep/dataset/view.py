@@ -16,6 +16,8 @@ from prep.leads import canonical_lead, default_axis, resolve_axis
 from prep.model import Annotations, Record
 from prep.pipeline.record import record_result
 from prep.quality.reasons import FLAGS, REASONS, group
+from prep.schema import (BEATS_NPY, LEAD_MASK_NPY, MANIFEST, NORM_CENTER_NPY, NORM_SCALE_NPY,
+                         WINDOWS_TABLE)
 
 # reason -> (score column, config section, config key) for explanations
 _EVIDENCE = {
@@ -88,15 +90,15 @@ class Dataset:
 
     def __init__(self, run_dir: str | Path):
         self.path = Path(run_dir)
-        mpath = self.path / "manifest.json"
+        mpath = self.path / MANIFEST
         if not mpath.exists():
             raise BeatmillError(f"{self.path} is not a beatmill dataset (no manifest.json); write "
                                 "one with 'beatmill run ... --out DIR'")
         self.manifest: dict = json.loads(mpath.read_text(encoding="utf-8"))
-        self.beats = np.load(self.path / "beats.npy", mmap_mode="r")
-        self.lead_mask = np.load(self.path / "lead_mask.npy", mmap_mode="r")
-        self.norm_center = np.load(self.path / "norm_center.npy", mmap_mode="r")
-        self.norm_scale = np.load(self.path / "norm_scale.npy", mmap_mode="r")
+        self.beats = np.load(self.path / BEATS_NPY, mmap_mode="r")
+        self.lead_mask = np.load(self.path / LEAD_MASK_NPY, mmap_mode="r")
+        self.norm_center = np.load(self.path / NORM_CENTER_NPY, mmap_mode="r")
+        self.norm_scale = np.load(self.path / NORM_SCALE_NPY, mmap_mode="r")
         self._tables: dict[str, pd.DataFrame] = {}
 
     def _table(self, name: str) -> pd.DataFrame:
@@ -161,7 +163,7 @@ class Dataset:
                  for f in filter(None, str(row["flags"]).split(";"))]
         rec_leads = self.leads[self.leads["record"] == row["record"]]
         windows = []
-        wpath = self.path / "windows.parquet"
+        wpath = self.path / WINDOWS_TABLE
         if wpath.exists():
             w = self._table("windows")
             w = w[(w["record"] == row["record"]) & (w["start"] <= row["r_sample"]) &

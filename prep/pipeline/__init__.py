@@ -1,2 +1,2 @@
-"""One record through every stage (record: beats_of_record, record_result, RecordResult), and
-long records in overlapping chunks (chunks)."""
+"""One record through every stage (record: beats_of_record, record_result; result:
+RecordResult; rr and signals: its helpers) and long records in overlapping chunks (chunks)."""

@@ -18,7 +18,8 @@ import pandas as pd
 from prep.config import Config
 from prep.io.sources import Source, read_source, record_length, source_inputs
 from prep.model import StageLog
-from prep.pipeline.record import RecordResult, record_result
+from prep.pipeline.record import record_result
+from prep.pipeline.result import RecordResult
 from prep.quality.windows import main_fault
 from prep.schema import empty_beats
 

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import logging
 import traceback
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
@@ -27,6 +27,9 @@ from prep.config import Config
 from prep.errors import BeatmillError, RecordError
 from prep.leads import match_lead
 from prep.model import BEAT_SYMBOLS, Record, StageLog
+from prep.pipeline.result import RecordResult
+from prep.pipeline.rr import UNCONFIRMED, rr_to_beats, unknown_across
+from prep.pipeline.signals import fill_gaps, second_detector
 from prep.quality import reasons as R
 from prep.quality.faults import fault_reason, lead_faults, window_fraction
 from prep.quality.rules import BeatEvidence, decide, quality_log
@@ -42,39 +45,6 @@ from prep.stages.rpeaks import detect_leads, fuse_leads
 from prep.stages.segment import beat_windows
 
 log = logging.getLogger("prep")
-
-
-@dataclass
-class RecordResult:
-    """Everything one record contributes to a dataset (beats not yet normalized)."""
-
-    name: str
-    status: str                      # ok / failed / no_usable_lead
-    error: str = ""
-    fs: float = float("nan")
-    duration_s: float = float("nan")
-    n_leads: int = 0
-    inputs: list = field(default_factory=list)
-    beats: pd.DataFrame | None = None          # one row per detected beat
-    tensor: np.ndarray | None = None           # (n_kept, n_axis, n_samples), mV, time order
-    mask: np.ndarray | None = None             # (n_kept, n_axis) bool
-    leads: list[dict] = field(default_factory=list)
-    logs: list[StageLog] = field(default_factory=list)
-    comments: list[str] = field(default_factory=list)
-    warnings: list[str] = field(default_factory=list)
-    windows: pd.DataFrame | None = None        # one row per lead and quality window
-    class_yield: dict = field(default_factory=dict)  # class -> reference / detected / kept
-    store: object | None = None                # shards.ShardTables: tables left on storage
-
-    @property
-    def n_beats(self) -> int:
-        if self.beats is None and self.store is not None:
-            return int(self.store.n_rows.get("beats") or 0)
-        return 0 if self.beats is None else len(self.beats)
-
-    @property
-    def n_kept(self) -> int:
-        return 0 if self.tensor is None else int(self.tensor.shape[0])
 
 
 @dataclass
@@ -122,19 +92,6 @@ class _State:
     evidence: BeatEvidence = None
     scores: dict = None             # beat-table score columns over every row
     n_library: int = 0
-
-
-def fill_gaps(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Replace NaN/inf runs by linear interpolation per lead; returns (filled, gap mask)."""
-    gap = ~np.isfinite(x)
-    if not gap.any():
-        return x, gap
-    y = x.copy()
-    idx = np.arange(x.shape[1])
-    for j in np.flatnonzero(gap.any(axis=1)):
-        ok = ~gap[j]
-        y[j] = np.interp(idx, idx[ok], x[j, ok]) if ok.any() else 0.0
-    return y, gap
 
 
 def beats_of_record(rec: Record, cfg: Config, axis: list[str],
@@ -337,7 +294,7 @@ def _score(st: _State) -> None:
              else np.ones(n, bool))
     n_seen = fused.support.sum(axis=1)
     weak = (n_seen < int(st.usable.sum())) | (fused.confidence < 1.0)
-    rr_prev, rr_next = _rr(r[vi], st.ra, fs)
+    rr_prev, rr_next = rr_to_beats(r[vi], st.ra, fs)
     lo, hi = np.searchsorted(st.ra, st.sv, "left"), np.searchsorted(st.ra, st.ev, "left")
     if vi.size:
         hf, _ = high_freq(st.notched[st.rows_src], fs)
@@ -410,11 +367,11 @@ def _tabulate(st: _State, mapping: dict[str, str] | None) -> None:
     # heartbeats: every row but detections judged not to be one; RR runs between heartbeats only
     is_beat = np.array([not any(R.group(c) == R.NOT_A_BEAT for c in x) for x in st.reasons],
                        bool)
-    rr_prev, rr_next = _rr(r, r[is_beat], fs)
+    rr_prev, rr_next = rr_to_beats(r, r[is_beat], fs)
     # a detection that could not be confirmed in noise may have been a heartbeat: where one lies
     # between a row and its neighbouring heartbeat, that RR is unknown (NaN), not a guess
-    unsure = np.array([any(c in _UNCONFIRMED for c in x) for x in st.reasons], bool)
-    rr_prev, rr_next = _unknown_across(r, r[unsure & ~is_beat], rr_prev, rr_next, fs)
+    unsure = np.array([any(c in UNCONFIRMED for c in x) for x in st.reasons], bool)
+    rr_prev, rr_next = unknown_across(r, r[unsure & ~is_beat], rr_prev, rr_next, fs)
     labels = _labels(st)
     res.class_yield = class_yield(r, included, rec.annotations, fs, cfg.labels.window_ms, mapping)
     res.beats = pd.DataFrame({
@@ -456,60 +413,6 @@ def _lead_row(rec: Record, j: int, used: bool, reason: str, axis: list[str], fau
             "windows_unusable": int(counts.get("unusable", 0)),
             "usable_share": float((w["grade"] != "unusable").mean()) if len(w) else 0.0,
             "main_fault": main_fault(w)}
-
-
-def second_detector(x: np.ndarray, fs: float) -> np.ndarray:
-    """R peaks from neurokit2's own detector on the filtered lead (for bSQI and agreement)."""
-    import warnings
-
-    import neurokit2 as nk
-
-    # the lead is already band-limited to 40 Hz, so keeping every q-th sample down to >= 90 Hz
-    # does not alias it; the peer detector then runs q times faster (R within +-q samples)
-    q = max(1, int(fs // 90))
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            p = nk.ecg_findpeaks(x[::q], sampling_rate=int(round(fs / q)),
-                                 method="neurokit")["ECG_R_Peaks"]
-        return np.sort(np.asarray(p, dtype=np.int64) * q)
-    except Exception:  # a failing peer detector means no agreement, recorded as such
-        return np.zeros(0, np.int64)
-
-
-def _rr(r: np.ndarray, accepted: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray]:
-    """RR of every row to the previous and next of the beats ``accepted`` (sorted R samples),
-    in s (NaN where there is none)."""
-    k = np.searchsorted(accepted, r, side="left")
-    prev = np.where(k > 0, accepted[np.clip(k - 1, 0, None)], -1) if accepted.size else np.full(r.size, -1)
-    k2 = np.searchsorted(accepted, r, side="right")
-    nxt = (np.where(k2 < accepted.size, accepted[np.clip(k2, 0, accepted.size - 1)], -1)
-           if accepted.size else np.full(r.size, -1))
-    rp = np.where(prev >= 0, (r - prev) / fs, np.nan)
-    rn = np.where(nxt >= 0, (nxt - r) / fs, np.nan)
-    return rp, rn
-
-
-#: reasons of detections that are not counted as heartbeats for want of confirmation (rather
-#: than contradicted by the signal): an RR across one of them is unknown
-_UNCONFIRMED = ("weak_in_noise", "unmatched_in_noise", "detector_disagreement", "unusable_window")
-
-
-def _unknown_across(r, unsure, rr_prev, rr_next, fs):
-    """RR intervals set to NaN where an unconfirmed detection lies strictly inside them.
-
-    >>> _unknown_across(np.array([0, 100, 200]), np.array([150]), np.array([np.nan, 1., 1.]),
-    ...                 np.array([1., 1., np.nan]), 100.0)
-    (array([nan,  1., nan]), array([ 1., nan, nan]))
-    """
-    if unsure.size == 0:
-        return rr_prev, rr_next
-    u = np.sort(unsure)
-    prev = r - np.nan_to_num(rr_prev) * fs
-    nxt = r + np.nan_to_num(rr_next) * fs
-    across_p = np.searchsorted(u, r, "left") > np.searchsorted(u, prev, "right")
-    across_n = np.searchsorted(u, nxt, "left") > np.searchsorted(u, r, "right")
-    return np.where(across_p, np.nan, rr_prev), np.where(across_n, np.nan, rr_next)
 
 
 def record_result(rec_loader: Callable[[], Record], name: str, cfg: Config,

@@ -15,6 +15,7 @@ import pandas as pd
 
 from prep.dataset.view import open_dataset
 from prep.quality.reasons import FLAGS, REASONS
+from prep.schema import REPORT, WINDOWS_TABLE
 
 # Paul Tol "bright" (colour-blind safe): blue, cyan, green, yellow, red, purple, grey
 TOL = ["#4477AA", "#66CCEE", "#228833", "#CCBB44", "#EE6677", "#AA3377", "#BBBBBB"]
@@ -42,7 +43,7 @@ def _table(df: pd.DataFrame, caption: str) -> str:
 
 def _quality_strips(ds) -> str:
     import matplotlib.pyplot as plt
-    w = ds._table("windows") if (ds.path / "windows.parquet").exists() else pd.DataFrame()
+    w = ds._table("windows") if (ds.path / WINDOWS_TABLE).exists() else pd.DataFrame()
     if w.empty:
         return "<p>No quality windows in this dataset.</p>"
     fs = ds.records.set_index("record")["fs"]
@@ -247,7 +248,7 @@ figcaption {{ font-size: 0.8rem; color: #555; }} pre {{ font-size: 0.75rem; }}
 {''.join(parts)}
 </body></html>
 """
-    out = Path(out) if out else ds.path / "report.html"
+    out = Path(out) if out else ds.path / REPORT
     out.write_text(page, encoding="utf-8")
     return out
 
