@@ -56,7 +56,7 @@ def test_from_toml_errors_name_the_file(tmp_path):
 
 def _breaking_values(f):
     """Values that break each constraint declared on a field (bounds, choices, list rules)."""
-    from prep.config import _default
+    from prep.config.declare import default_of as _default
     m, d = f.metadata, _default(f)
     if isinstance(d, bool):
         return ["yes"]
@@ -93,7 +93,7 @@ def _breaking_values(f):
 
 
 def test_every_constraint_rejects_a_value_that_breaks_it():
-    # every bound, choice and list rule declared in prep/config.py, each broken once
+    # every bound, choice and list rule declared in prep/config/, each broken once
     import dataclasses
 
     from prep.config import SECTIONS

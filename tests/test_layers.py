@@ -9,8 +9,9 @@ from pathlib import Path
 import pytest
 
 PKG = Path(__file__).resolve().parents[1] / "prep"
-CORE = {"prep", "prep.errors", "prep.model", "prep.config", "prep.leads", "prep.evaluate", "prep.schema",
-        "prep.demo"}
+CORE = {"prep", "prep.errors", "prep.model", "prep.config", "prep.config.declare",
+        "prep.config.signal", "prep.config.quality", "prep.config.labels", "prep.leads",
+        "prep.evaluate", "prep.schema", "prep.demo"}
 
 # subpackage (or top-level module) -> what its modules may import besides the core
 ALLOWED = {
