@@ -59,23 +59,44 @@ def scale_to_mv(units: str) -> float:
     return _SCALE_TO_MV.get((units or "").strip().lower(), 1.0)
 
 
-def default_axis(record_leads: list[list[str]]) -> list[str]:
-    """The lead axis when the user chooses none: the canonical ECG leads every record shares.
+def default_axis(record_leads: list[list[str]], min_share: float = 0.5) -> list[str]:
+    """The lead axis when the user chooses none: the canonical ECG leads that at least
+    ``min_share`` of the records have (default half; a record without one of them keeps its
+    beats with that slot masked).
 
     Order: the standard twelve in their order (I, II, III, aVR, aVL, aVF, V1-V6), then the rest by
-    name. When every record has all standard twelve, only those twelve (extra leads such as the
+    name. When the standard twelve are all common, only those twelve (extra leads such as the
     Frank leads need ``--leads``).
+
+    >>> default_axis([["II", "V1"]] * 46 + [["V5", "V2"]] * 2)
+    ['II', 'V1']
+    >>> default_axis([["II", "V5"], ["II"]])
+    ['II', 'V5']
     """
     if not record_leads:
         return []
-    shared = set(record_leads[0])
-    for leads in record_leads[1:]:
-        shared &= set(leads)
-    if set(STANDARD_12) <= shared:
+    count: dict[str, int] = {}
+    for leads in record_leads:
+        for lead in set(leads):
+            count[lead] = count.get(lead, 0) + 1
+    common = {lead for lead, c in count.items() if c >= min_share * len(record_leads)}
+    if set(STANDARD_12) <= common:
         return list(STANDARD_12)
-    std = [s for s in STANDARD_12 if s in shared]
-    rest = sorted((s for s in shared if s not in STANDARD_12), key=str.lower)
+    std = [s for s in STANDARD_12 if s in common]
+    rest = sorted((s for s in common if s not in STANDARD_12), key=str.lower)
     return std + rest
+
+
+def nearest_lead(name: str, known: list[str]) -> str | None:
+    """The known lead name closest to a mistyped one (None when nothing is close).
+
+    >>> nearest_lead("V55", ["II", "V5", "V1"])
+    'V5'
+    """
+    import difflib
+    by_lower = {k.lower(): k for k in known}
+    hit = difflib.get_close_matches(name.lower(), list(by_lower), n=1, cutoff=0.5)
+    return by_lower[hit[0]] if hit else None
 
 
 def resolve_axis(select: list[str]) -> list[str]:

@@ -38,3 +38,15 @@ def test_readme_caution_and_commands():
     test_cmd = 'python -m pip install -e ".[test]" && python -m pytest -q'
     assert test_cmd in readme and test_cmd in ci
     assert "beatmill run demo_records" in readme
+
+
+def test_beat_ids_in_help_and_docs_exist_in_the_demo(demo_run):
+    import re
+
+    from prep.cli import main as cli_main
+    out, _ = demo_run
+    ids = set(pd.read_parquet(out / "beats.parquet").beat_id)
+    texts = [Path(cli_main.__file__).read_text(), (DOCS / "api.md").read_text(),
+             (DOCS.parent / "README.md").read_text()]
+    named = {m for t in texts for m in re.findall(r"\bnight0\d:\d+\b", t)}
+    assert named and named <= ids, named - ids

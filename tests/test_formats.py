@@ -153,11 +153,12 @@ def test_every_format_module_is_registered_and_scans_agree_with_explicit_paths(t
     shutil.copy(tmp_path / "patch.EDF", tmp_path / "other.bdf")
     (tmp_path / "loop").mkdir()
     (tmp_path / "loop" / "back").symlink_to(tmp_path, target_is_directory=True)
-    scanned, problems = find_sources([tmp_path])
+    notes = []
+    scanned, problems = find_sources([tmp_path], notes=notes)
     explicit, _ = find_sources([tmp_path / "night01.hea", tmp_path / "patch.EDF",
                                 tmp_path / "other.bdf"])
     assert scanned == explicit and [s.kind for s in scanned] == ["wfdb", "edf", "edf"]
-    assert not problems
+    assert not problems and not notes
 
 
 def test_upper_case_wfdb_header_is_named_not_skipped(tmp_path):
@@ -165,5 +166,6 @@ def test_upper_case_wfdb_header_is_named_not_skipped(tmp_path):
         shutil.copy(DEMO / name, tmp_path / name)
     shutil.copy(DEMO / "night01.hea", tmp_path / "night01.HEA")
     from prep.io.sources import find_sources
-    found, problems = find_sources([tmp_path])
-    assert not found and "lower case" in problems[0] and "night01.HEA" in problems[0]
+    notes = []
+    found, problems = find_sources([tmp_path], notes=notes)
+    assert not found and "lower case" in notes[0] and "night01.HEA" in notes[0]

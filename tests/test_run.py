@@ -155,7 +155,12 @@ def test_output_folder_is_not_overwritten_by_accident(demo_run, tmp_path):
     shutil.copytree(out, target)
     with pytest.raises(ConfigError, match="another configuration"):
         run([DEMO / "night01.hea"], target, config=Config().replace(resample={"n_samples": 128}))
-    run([DEMO / "night01.hea"], target)  # same configuration: processed again in place
+    # same configuration, other records: a 7-record dataset is never replaced by a 1-record one
+    # without --overwrite (docs/inputs.md)
+    with pytest.raises(ConfigError, match="7 records made from other inputs"):
+        run([DEMO / "night01.hea"], target)
+    run([DEMO], target)  # same configuration and records: processed again in place
+    (target / "report.html").write_text("<p>the 7-record dataset</p>")
     (tmp_path / "plain").mkdir()
     (tmp_path / "plain" / "x").write_text("x")
     with pytest.raises(ConfigError, match="not empty"):
@@ -167,6 +172,7 @@ def test_output_folder_is_not_overwritten_by_accident(demo_run, tmp_path):
         run([DEMO / "night01.hea"], other, overwrite=True)
     s = run([DEMO / "night01.hea"], target, overwrite=True)
     assert s.n_records == 1
+    assert not (target / "report.html").exists()  # it described the replaced dataset
 
 
 def test_csv_input_with_sidecar(tmp_path):

@@ -73,6 +73,8 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
       beatmill run demo_records --out runs/demo --leads II,V5 --train-classes N --workers 2
     """
     _setup_logging(verbose, quiet)
+    if fs is not None and not fs > 0:
+        _fail(f"--fs {fs:g}: a sampling rate is a positive number of Hz (for example --fs 250)")
     from prep.config import Config
     from prep.dataset.run import run as run_dataset
     from prep.errors import BeatmillError, ConfigError
@@ -105,19 +107,29 @@ def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record 
         stop()
         _fail(str(exc))
     stop()
-    typer.echo(f"wrote {summary.out}: {summary.n_records} records "
+    if not quiet:
+        _print_summary(summary)
+    raise typer.Exit(summary.exit_code)
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" + ("" if n == 1 else "s")
+
+
+def _print_summary(summary) -> None:
+    """The end-of-run lines: counts, splits, class yield, then the dataset's warnings."""
+    from prep.dataset.run import split_summary, yield_summary
+    typer.echo(f"wrote {summary.out}: {_plural(summary.n_records, 'record')} "
                f"({summary.n_failed} failed, {summary.n_no_lead} without a usable lead), "
                f"{summary.n_beats} beats detected, {summary.n_kept} kept; lead axis "
                f"{','.join(summary.axis)}")
-    if summary.splits and not quiet:
-        from prep.dataset.run import split_summary
+    if summary.splits:
         typer.echo(split_summary(summary.splits))
-    if summary.class_yield and not quiet:
-        from prep.dataset.run import yield_summary
-        text = yield_summary(summary.class_yield)
-        if text:
-            typer.echo(text)
-    raise typer.Exit(summary.exit_code)
+    text = yield_summary(summary.class_yield) if summary.class_yield else ""
+    if text:
+        typer.echo(text)
+    for w in summary.warnings or []:
+        typer.echo(f"warning: {w}")
 
 
 def _progress(quiet: bool):
@@ -175,7 +187,11 @@ def check(run_dir: Path = typer.Argument(..., help="A dataset folder written by 
       beatmill check runs/demo
     """
     from prep.dataset.check import check_dataset
+    from prep.schema import MANIFEST
 
+    if not (run_dir / MANIFEST).is_file():
+        _fail(f"{run_dir} is not a beatmill dataset (no {MANIFEST}); give a folder written by "
+              "'beatmill run'")
     problems = check_dataset(run_dir)
     if problems:
         for p in problems:
@@ -225,14 +241,14 @@ def reasons() -> None:
 
 @app.command()
 def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
-        beat_id: str = typer.Argument(..., help="A beat_id from beats.parquet, e.g. night05:10538."),
+        beat_id: str = typer.Argument(..., help="A beat_id from beats.parquet, e.g. night05:10536."),
         plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw the beat in context "
                                             "to this PNG file.")) -> None:
     """Explain one beat: where it is, its label, kept or not, and every reason with its evidence.
 
     Example:
 
-      beatmill why runs/demo night05:10538 --plot night05.png
+      beatmill why runs/demo night05:10536 --plot night05.png
     """
     from prep.dataset.view import open_dataset
     from prep.errors import BeatmillError
@@ -331,10 +347,14 @@ def report(run_dir: Path = typer.Argument(..., help="A dataset folder."),
     from prep.errors import BeatmillError
     from prep.report.html import write_report
 
+    if out is not None and not out.parent.is_dir():
+        _fail(f"--out {out}: folder {out.parent} does not exist; create it or choose another path")
     try:
         path = write_report(run_dir, out)
     except BeatmillError as exc:
         _fail(str(exc))
+    except OSError as exc:
+        _fail(f"cannot write the report ({exc.strerror or exc}: {exc.filename or out})", code=4)
     typer.echo(f"wrote {path}")
 
 

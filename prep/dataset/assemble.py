@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -52,6 +52,7 @@ class Provenance:
     mapping: dict             # symbol -> class overrides (labels.mapping_file)
     pmap: dict                # record -> patient (split.patient_map)
     extra: dict               # contents of files the configuration names (part of its hash)
+    axis_gaps: dict = field(default_factory=dict)  # record -> axis leads it lacks (masked)
 
 
 def assemble(results: list[RecordResult], cfg: Config, axis: list[str], prov: Provenance,

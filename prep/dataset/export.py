@@ -14,12 +14,21 @@ import numpy as np
 import pandas as pd
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def _atomic(path: Path, write) -> None:
-    """Write through a temporary file in the same folder, then rename over ``path``."""
+    """Write through a temporary file in the same folder, then rename over ``path``. The file
+    gets the mode a plain ``open`` would give it (0666 less the umask), not the temporary
+    file's 0600, so colleagues reading a shared dataset folder can read every file."""
     fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", suffix=".part", dir=path.parent)
     os.close(fd)
     try:
         write(Path(tmp))
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)

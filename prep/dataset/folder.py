@@ -8,7 +8,7 @@ import shutil
 from pathlib import Path
 
 from prep.errors import ConfigError
-from prep.schema import MANIFEST, TABLE_FILES, TENSOR_FILES
+from prep.schema import MANIFEST, REPORT, TABLE_FILES, TENSOR_FILES
 
 log = logging.getLogger("prep")
 
@@ -16,55 +16,87 @@ log = logging.getLogger("prep")
 def swap_in(staging: Path, out: Path) -> None:
     """Move the staged files into ``out``; the manifest, which vouches for the others, last.
     A failure while writing (no space, no permission) happens in the staging folder, before
-    anything in ``out`` is touched."""
+    anything in ``out`` is touched. A report of another dataset (``report.html``) goes: it
+    would describe records this dataset does not hold."""
+    old = _read_bytes(out / MANIFEST)
     for name in TENSOR_FILES + TABLE_FILES + (MANIFEST,):
         os.replace(staging / name, out / name)
+    if old is not None and old != _read_bytes(out / MANIFEST):
+        (out / REPORT).unlink(missing_ok=True)
 
 
-def prepare_out(out: Path, overwrite: bool, config_hash: str) -> None:
+def _read_bytes(path: Path) -> bytes | None:
+    try:
+        return path.read_bytes()
+    except OSError:
+        return None
+
+
+def prepare_out(out: Path, overwrite: bool, config_hash: str, records: list[str]) -> None:
     """Refuse, before any work, an output that is in the way; nothing is deleted here.
 
-    A dataset folder written with the same configuration hash is processed again in place (the
-    outputs are the same for the same inputs); one with another configuration needs --overwrite.
+    A dataset folder written with the same configuration hash from the same records is
+    processed again in place (the outputs are the same for the same inputs); one with another
+    configuration or other records needs --overwrite.
     """
     if out.exists() and not out.is_dir():
         raise ConfigError(f"output {out} exists and is not a folder; choose another --out")
     if out.exists() and any(out.iterdir()):
-        previous = previous_hash(out)
-        if previous == config_hash:
-            mark_run(out, config_hash)
+        before = previous_run(out)
+        same_config = before.get("config_sha256") == config_hash
+        if same_config and before.get("records") == records:
+            mark_run(out, config_hash, records)
             return
         if not overwrite:
-            if previous:
-                raise ConfigError(f"output folder {out} holds a dataset made with another "
-                                  f"configuration (hash {previous[:12]}, this run {config_hash[:12]}); "
-                                  "choose a new --out or pass --overwrite to replace it")
-            raise ConfigError(f"output folder {out} is not empty; choose a new --out or pass "
-                              "--overwrite to replace it")
+            raise ConfigError(_in_the_way(out, before, config_hash, records))
         if not (out / MANIFEST).exists() and not (out / ".shards" / "RUN.json").exists():
             raise ConfigError(f"refusing to replace {out}: it holds files but no {MANIFEST}, so "
                               "it is not a beatmill dataset; remove it yourself if you mean it")
+        if not same_config and (out / ".shards").exists():
+            shutil.rmtree(out / ".shards")  # shards of another configuration
     if not os.access(out if out.exists() else existing_parent(out), os.W_OK):
         raise ConfigError(f"cannot write to {out}: permission denied; choose another --out")
-    if overwrite and (out / ".shards").exists():
-        shutil.rmtree(out / ".shards")  # shards of another configuration
-    mark_run(out, config_hash)
+    mark_run(out, config_hash, records)
 
 
-def mark_run(out: Path, config_hash: str) -> None:
-    """Record the configuration of the run in progress, so a killed run is resumed only with it."""
+def _in_the_way(out: Path, before: dict, config_hash: str, records: list[str]) -> str:
+    fix = "choose a new --out or pass --overwrite to replace it"
+    previous = before.get("config_sha256")
+    if not previous:
+        return f"output folder {out} is not empty; {fix}"
+    if previous != config_hash:
+        return (f"output folder {out} holds a dataset made with another configuration (hash "
+                f"{previous[:12]}, this run {config_hash[:12]}); {fix}")
+    old = before.get("records") or []
+    n_old, n_new = len(old), len(records)
+    gone = sorted(set(old) - set(records))
+    return (f"output folder {out} holds a dataset of {n_old} record{'s' * (n_old != 1)} made from "
+            f"other inputs (this run has {n_new} record{'s' * (n_new != 1)}"
+            + (f"; not in this run: {', '.join(Path(g).name for g in gone[:5])}"
+               + (" ..." if len(gone) > 5 else "") if gone else "") + f"); {fix}")
+
+
+def mark_run(out: Path, config_hash: str, records: list[str]) -> None:
+    """Record the configuration and records of the run in progress, so a killed run is resumed
+    only with them."""
     (out / ".shards").mkdir(parents=True, exist_ok=True)
-    (out / ".shards" / "RUN.json").write_text(json.dumps({"config_sha256": config_hash}))
+    (out / ".shards" / "RUN.json").write_text(json.dumps({"config_sha256": config_hash,
+                                                         "records": records}))
 
 
-def previous_hash(out: Path) -> str | None:
-    """Config hash of the dataset in ``out``, or of the run that was writing it when it stopped."""
+def previous_run(out: Path) -> dict:
+    """Configuration hash and record paths of the dataset in ``out``, or of the run that was
+    writing it when it stopped ({} when neither says)."""
     for f in (out / MANIFEST, out / ".shards" / "RUN.json"):
         try:
-            return json.loads(f.read_text(encoding="utf-8")).get("config_sha256")
-        except (OSError, ValueError, AttributeError):
+            m = json.loads(f.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
             continue
-    return None
+        if isinstance(m, dict) and m.get("config_sha256"):
+            records = m.get("records") if "records" in m and isinstance(m["records"], list) \
+                else (m.get("inputs") or {}).get("records")
+            return {"config_sha256": m["config_sha256"], "records": records}
+    return {}
 
 
 def existing_parent(p: Path) -> Path:

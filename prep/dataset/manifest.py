@@ -32,6 +32,7 @@ def build_manifest(results: list[RecordResult], cfg: Config, axis: list[str], pr
         "resolved_files": prov.extra,
         "environment": environment(),
         "lead_axis": axis,
+        "lead_axis_gaps": dict(sorted(prov.axis_gaps.items())),
         "tensor": {"file": BEATS_NPY, "shape": list(tensor_shape), "dtype": "float32",
                    "order": "C", "axes": ["beat", "lead", "sample"],
                    "row_order": "split (train, val, test), then patient, record and time",
@@ -43,6 +44,7 @@ def build_manifest(results: list[RecordResult], cfg: Config, axis: list[str], pr
                    "classes": {**AAMI_CLASSES, **prov.mapping}, "unlabeled": UNLABELED,
                    "train_classes": sorted(plan.train_classes)},
         "splits": _splits(plan, tables),
+        "warnings": dataset_warnings(plan, tables, prov.axis_gaps, axis, yield_section),
         "class_yield": yield_section,
         "inputs": {"given": prov.given, "records": prov.record_paths},
         "counts": {"records": len(results), "records_ok": len(results) - n_failed - n_nolead,
@@ -53,6 +55,34 @@ def build_manifest(results: list[RecordResult], cfg: Config, axis: list[str], pr
         "records": (RecordsSection(results) if any(r.store is not None for r in results)
                     else dict(RecordsSection(results))),  # in-memory results: a plain dict
     }
+
+
+#: classes an anomaly model is meant to find (AAMI EC57 classes other than N and Q)
+_ABNORMAL = ("S", "V", "F")
+
+
+def dataset_warnings(plan: Plan, tables: Tables, gaps: dict, axis: list[str],
+                     yield_section: dict) -> list[str]:
+    """What a user should know before training: records lacking axis leads, empty splits, and
+    (where reference labels exist) validation or test splits without any abnormal beat."""
+    out = []
+    if gaps:
+        names = sorted(gaps)
+        shown = "; ".join(f"{n} lacks {', '.join(gaps[n])}" for n in names[:10])
+        more = f"; and {len(names) - 10} more records" if len(names) > 10 else ""
+        out.append(f"{len(names)} of {len(plan.places)} records lack a lead of the axis "
+                   f"{','.join(axis)} (its slots are masked, lead_mask False): {shown}{more}")
+    labelled = bool(yield_section.get("records_with_reference"))
+    for s in SPLITS:
+        beats = plan.ranges[s][1] - plan.ranges[s][0]
+        if not beats:
+            out.append(f"the {s} split holds no beat")
+        elif labelled and s != "train" and not any(
+                tables.split_classes[s].get(c) for c in _ABNORMAL):
+            out.append(f"the {s} split holds no abnormal beat (S, V, F): a model cannot be "
+                       "tested there on the anomalies it is meant to find; add records or fix "
+                       "the split (split.ratios, split.seed, split.*_patients)")
+    return out
 
 
 def _splits(plan: Plan, tables: Tables) -> dict:

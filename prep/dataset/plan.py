@@ -93,12 +93,14 @@ def plan_dataset(results: list[RecordResult], cfg: Config, pmap: dict) -> Plan:
     places = [Place(p, "", r.n_beats, kept_classes(r)) for r, p in zip(results, patients)]
     sp = cfg.split
     fixed = bool(sp.train_patients or sp.val_patients or sp.test_patients)
-    split_of = (fixed_assignment(sorted(set(patients)), sp.train_patients, sp.val_patients,
-                                 sp.test_patients) if fixed
-                else assign_patients(_kept_per_patient(places), sp.ratios, sp.seed))
+    ok = [r.status == "ok" for r in results]  # a failed record takes no split (nor a slot)
+    usable = [pl for pl, good in zip(places, ok) if good]
+    split_of = (fixed_assignment(sorted({pl.patient for pl in usable}), sp.train_patients,
+                                 sp.val_patients, sp.test_patients) if fixed
+                else assign_patients(_kept_per_patient(usable), sp.ratios, sp.seed))
     train_classes = set(cfg.labels.train_classes)
-    for place in places:
-        place.split = split_of.get(place.patient, "")
+    for place, good in zip(places, ok):
+        place.split = split_of.get(place.patient, "") if good else ""
         if fixed and not place.split:
             place.n_final = 0
         elif place.split == "train" and train_classes:

@@ -21,9 +21,9 @@ from prep.dataset.shards import read_shard, write_shard
 from prep.dataset.split import load_patient_map
 from prep.errors import ConfigError
 from prep.io.sources import Source, find_sources, source_inputs, source_leads
-from prep.leads import default_axis, resolve_axis
+from prep.leads import default_axis, match_lead, nearest_lead, resolve_axis
 from prep.pipeline.result import RecordResult
-from prep.stages.labels import load_mapping
+from prep.stages.labels import AAMI_CLASSES, UNLABELED, load_mapping
 
 log = logging.getLogger("prep")
 
@@ -41,6 +41,7 @@ class RunSummary:
     exit_code: int
     splits: dict | None = None
     class_yield: dict | None = None   # the manifest's class_yield section
+    warnings: list | None = None      # the manifest's warnings (axis gaps, empty splits, ...)
 
 
 def run(sources: list[str | Path], out: str | Path, *, config: Config | None = None,
@@ -62,53 +63,88 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         A dask.distributed scheduler address, or ``"local"`` for a LocalCluster with one worker
         process per core; records are then processed as cluster tasks.
 
-    Raises :class:`ConfigError` for problems found before any record is read (bad config, no
-    input found, output folder in the way). Record failures never raise: they are reported in
-    ``records.parquet`` and the summary's exit code.
+    Raises :class:`ConfigError` for problems found before any record is read (bad config, an
+    input that matches nothing, a lead or class named that no record has, an output folder in
+    the way). Record failures never raise: they are reported in ``records.parquet`` and the
+    summary's exit code.
     """
     cfg = (config or Config()).validate()
     if csv_fs:
         cfg = cfg.replace(read={"csv_fs_hz": float(csv_fs)})
     out = Path(out)
     mapping, pmap, extra = resolve_extras(cfg)
-    found, problems = find_sources(list(sources))
-    if not found:
-        raise ConfigError(problems or ["no input records given"])
-    for p in problems:
-        log.warning("%s", p)
+    cfg = check_train_classes(cfg, mapping)
+    found = _find(sources, cfg)
+    axis, gaps = lead_axis(found, cfg)
+    cfg = cfg.replace(leads={"select": axis})  # the resolved axis is what the hash covers
     chash = cfg.sha256(extra)
-    root = str(shards) if shards else str(out / ".shards")
-    prepare_out(out, overwrite, chash)
-    # workers start (and warm up) while the parent reads headers and hashes the inputs
+    prepare_out(out, overwrite, chash, [str(s.path) for s in found])
+    # workers start (and warm up) while the parent hashes the inputs
     n_pool = min(n_workers(workers), len(found))
     pool = start_pool(n_pool) if not dask and n_pool > 1 else None
     try:
-        axis, inputs = _axis_and_inputs(found, cfg)
+        inputs = [_inputs_or_empty(s, cfg) for s in found]
     except BaseException:
         if pool is not None:
             pool.shutdown(cancel_futures=True)
         raise
-    key = _shard_hash(json.dumps({"config": chash, "axis": axis}))
-    results: list = [None] * len(found)
-    todo = []
-    done = 0
+    job = _Job(found, inputs, cfg, axis, mapping, str(shards) if shards else str(out / ".shards"),
+               _shard_hash(json.dumps({"config": chash, "axis": axis})))
+    results = _process(job, workers, dask, pool, progress)
+    prov = Provenance([str(s) for s in sources], [str(s.path) for s in found], mapping, pmap,
+                      extra, gaps)
+    return _summary(out, _write(out, results, cfg, axis, prov))
+
+
+@dataclass
+class _Job:
+    """The records of a run and what each worker task needs besides its record."""
+
+    found: list[Source]
+    inputs: list[list]
+    cfg: Config
+    axis: list[str]
+    mapping: dict
+    root: str   # where shards go
+    key: str    # the shard key: configuration and lead axis
+
+
+def _find(sources: list[str | Path], cfg: Config) -> list[Source]:
+    """The records named by the user's arguments; an argument matching nothing is an error."""
+    notes: list[str] = []
+    found, problems = find_sources(list(sources), notes=notes, csv_rate=bool(cfg.read.csv_fs_hz))
+    for n in notes:
+        log.warning("%s", n)
+    if problems or not found:
+        raise ConfigError(problems or ["no input records given"])
+    return found
+
+
+def _process(job: _Job, workers, dask, pool, progress) -> list[RecordResult]:
+    """Every record's result: committed shards reused, the others processed (in workers or on
+    a cluster) and read back from their shards."""
+    found, n = job.found, len(job.found)
+    results: list = [None] * n
+    todo, done = [], 0
     for i, src in enumerate(found):
-        cached = read_shard(root, src.name, key, inputs[i], tables=False)
+        cached = read_shard(job.root, src.name, job.key, job.inputs[i], tables=False)
         if cached is None:
             todo.append(i)
-        else:
-            results[i] = cached
-            done += 1
-            if progress:
-                progress(cached, done, len(found))
-    if len(found) - len(todo):
-        log.info("reusing %d committed shards", len(found) - len(todo))
+            continue
+        results[i] = cached
+        done += 1
+        if progress:
+            progress(cached, done, n)
+    if n - len(todo):
+        log.info("reused %d committed shard%s of %d records", n - len(todo),
+                 "" if n - len(todo) == 1 else "s", n)
     if dask or pool is not None:
-        todo = _largest_first(todo, found, inputs)
-    tasks = [(found[i], cfg, axis, mapping, root, key, inputs[i]) for i in todo]
+        todo = _largest_first(todo, found, job.inputs)
+    tasks = [(found[i], job.cfg, job.axis, job.mapping, job.root, job.key, job.inputs[i])
+             for i in todo]
     for i, error in zip(todo, execute(_shard_task, tasks, workers, dask, pool)):
         done += 1
-        res = read_shard(root, found[i].name, key, inputs[i], tables=False)
+        res = read_shard(job.root, found[i].name, job.key, job.inputs[i], tables=False)
         if res is None:  # the worker died before committing: report, never trust half a shard
             res = RecordResult(found[i].name, "failed", error=error or "the worker processing "
                                "this record stopped before writing its results")
@@ -116,7 +152,13 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
             log.warning("%s: %s", res.name, res.error)
         results[i] = res
         if progress:
-            progress(res, done, len(found))
+            progress(res, done, n)
+    return results
+
+
+def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
+           prov: Provenance) -> Assembled:
+    """Assemble the dataset in a staging folder beside ``out``, then swap it in."""
     staging = out / f".staging-{os.getpid()}"
     shutil.rmtree(staging, ignore_errors=True)
     try:
@@ -127,28 +169,63 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
                 return np.zeros(shape, dtype)
             return NpyWriter(staging / name, shape, dtype)
 
-        prov = Provenance([str(s) for s in sources], [str(s.path) for s in found], mapping, pmap,
-                          extra)
         a = assemble(results, cfg, axis, prov, alloc=alloc, tables_to=staging)
         write_assembled(staging, a)
         swap_in(staging, out)
     finally:
         shutil.rmtree(staging, ignore_errors=True)
-    return _summary(out, a)
+    return a
 
 
-def _axis_and_inputs(found: list[Source], cfg: Config) -> tuple[list[str], list]:
-    """The lead axis (from the config or the records' headers) and each source's input files
-    with their SHA-256 (a committed shard is reused only for unchanged inputs)."""
+def lead_axis(found: list[Source], cfg: Config) -> tuple[list[str], dict[str, list[str]]]:
+    """The lead axis (the configuration's, aliases resolved, or the leads at least half of the
+    records have) and, per record, the axis leads it lacks (their slots are masked).
+
+    A lead the user names that no record has is an error naming the nearest lead; so is a
+    collection none of whose records can be read (with the first record's own message)."""
+    errors: list[str] = []
+    peeks = {s.name: source_leads(s, cfg.read, errors) for s in found}
+    known = [x for x in peeks.values() if x]
+    if not known:
+        raise ConfigError(f"no record could be read ({len(found)} tried); the first says: "
+                          f"{errors[0] if errors else 'no ECG lead'}")
+    present = sorted({lead for x in known for lead in x}, key=str.lower)
     if cfg.leads.select:
         axis = resolve_axis(cfg.leads.select)
+        absent = [a for a in axis if all(match_lead(a, x) is None for x in known)]
+        if absent:
+            hints = [f"{a} (did you mean {nearest_lead(a, present)}?)" if nearest_lead(a, present)
+                     else a for a in absent]
+            raise ConfigError(f"--leads / leads.select: {', '.join(hints)} is in no record; the "
+                              f"records have {', '.join(present)}")
     else:
-        peeks = [lp for lp in (source_leads(s, cfg.read) for s in found) if lp]
-        axis = default_axis(peeks)
+        axis = default_axis(known)
         if not axis:
-            raise ConfigError("the records share no ECG lead; choose the lead axis with --leads "
-                              "(for example --leads II)")
-    return axis, [_inputs_or_empty(s, cfg) for s in found]
+            raise ConfigError("no ECG lead is in at least half of the records; choose the lead "
+                              f"axis with --leads (the records have {', '.join(present)})")
+    gaps = {name: [a for a in axis if match_lead(a, x) is None]
+            for name, x in peeks.items() if x}
+    return axis, {k: v for k, v in gaps.items() if v}
+
+
+def check_train_classes(cfg: Config, mapping: dict) -> Config:
+    """Training classes matched case-insensitively to the classes in use (the AAMI table, the
+    mapping file's classes and 'unlabeled'); an unknown one is an error naming the nearest."""
+    if not cfg.labels.train_classes:
+        return cfg
+    classes = sorted(set(AAMI_CLASSES.values()) | set(mapping.values()) | {UNLABELED})
+    by_lower = {c.lower(): c for c in classes}
+    picked, bad = [], []
+    for c in cfg.labels.train_classes:
+        hit = by_lower.get(c.strip().lower())
+        (picked.append(hit) if hit else bad.append(c))
+    if bad:
+        import difflib
+        hints = [f"{b!r}" + (f" (did you mean {m[0]}?)" if (m := difflib.get_close_matches(
+            b, classes, n=1, cutoff=0.3)) else "") for b in bad]
+        raise ConfigError(f"--train-classes / labels.train_classes: {', '.join(hints)} is not a "
+                          f"class in use; the classes are {', '.join(classes)}")
+    return cfg.replace(labels={"train_classes": picked})
 
 
 def _largest_first(todo: list[int], found: list[Source], inputs: list) -> list[int]:
@@ -205,7 +282,8 @@ def _summary(out: Path, a: Assembled) -> RunSummary:
     c = a.manifest["counts"]
     return RunSummary(out, c["records"], c["records_failed"], c["records_no_usable_lead"],
                       c["beats"], c["beats_kept"], a.manifest["lead_axis"], a.exit_code,
-                      a.manifest["splits"], a.manifest.get("class_yield"))
+                      a.manifest["splits"], a.manifest.get("class_yield"),
+                      a.manifest.get("warnings"))
 
 
 def split_summary(info: dict) -> str:

@@ -141,13 +141,29 @@ class Dataset:
         rows = t[t["included"] & (t["tensor_index"] >= a) & (t["tensor_index"] < b)]
         return self.beats[a:b], rows.sort_values("tensor_index").reset_index(drop=True)
 
+    def _nearest(self, beat_id: str) -> str:
+        """The beats of that record nearest the sample asked for, or the records there are."""
+        t = self.table
+        record, _, sample = beat_id.rpartition(":")
+        rows = t[t["record"] == record]
+        if rows.empty:
+            names = sorted(t["record"].unique())
+            return ("records here: " + ", ".join(names[:8]) + (" ..." if len(names) > 8 else "")
+                    if names else "the dataset holds no beat")
+        try:
+            at = int(sample)
+        except ValueError:
+            at = 0
+        near = rows.iloc[np.argsort(np.abs(rows["r_sample"].to_numpy() - at))[:3]]
+        return "nearest beats of " + record + ": " + ", ".join(sorted(near["beat_id"],
+                                                                      key=lambda b: int(b.rpartition(":")[2])))
+
     def explain(self, beat_id: str) -> dict:
         """What happened to one beat, as data: where, label, kept or not, and why."""
         t = self.table
         hit = t[t["beat_id"] == beat_id]
         if hit.empty:
-            raise BeatmillError(f"no beat {beat_id!r} in {self.path}; beat ids look like "
-                                f"{t['beat_id'].iloc[0] if len(t) else 'record:sample'}")
+            raise BeatmillError(f"no beat {beat_id!r} in {self.path}; {self._nearest(beat_id)}")
         row = hit.iloc[0]
         cfg = self.manifest["config"]
         reasons = []

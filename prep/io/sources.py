@@ -61,19 +61,24 @@ def _scan(folder: Path, problems: list[str]) -> list[Path]:
     return sorted(hits)
 
 
-def find_sources(items: list[str | Path]) -> tuple[list[Source], list[str]]:
+def find_sources(items: list[str | Path], *, notes: list[str] | None = None,
+                 csv_rate: bool = False) -> tuple[list[Source], list[str]]:
     """Turn the user's arguments (record files, WFDB base names, folders) into sources.
 
-    Returns the sources (sorted, de-duplicated) and messages for arguments that matched nothing.
-    Record names come from the file name; where two inputs share one, they become the path
-    relative to the common input root, without extension.
+    Returns the sources (sorted, de-duplicated) and messages for arguments that matched nothing
+    (errors). ``notes`` collects what a folder scan left out, once each: unreadable subfolders,
+    suffixes a reader cannot take, and CSV files beside WFDB or EDF records, which are taken as
+    tables (a database's metadata), not records, unless named, given a rate (``csv_rate``: the
+    user gave ``--fs``) or a sidecar JSON. Record names come from the file name; where two
+    inputs share one, they become the path relative to the common input root, without extension.
     """
     found: list[tuple[Format, Path]] = []
     problems: list[str] = []
+    notes = notes if notes is not None else []
     for item in items:
         p = Path(item)
         if p.is_dir():
-            hits = _scan(p, problems)
+            hits = _tables_left_out(_scan(p, notes), p, csv_rate, notes)
             if not hits:
                 kinds = ", ".join(s for f in FORMATS.values() for s in f.suffixes)
                 problems.append(f"folder {p} holds no record file ({kinds})")
@@ -101,6 +106,21 @@ def find_sources(items: list[str | Path]) -> tuple[list[Source], list[str]]:
         names = [str(b.parent.relative_to(root) / FORMATS[k].record_name(b)) if n in dup else n
                  for (k, b), n in zip(bases, names)]
     return [Source(k, b, n) for (k, b), n in zip(bases, names)], problems
+
+
+def _tables_left_out(hits: list[Path], folder: Path, csv_rate: bool, notes: list[str]) -> list[Path]:
+    """A folder's CSV files without a rate, beside records of another format, are left out."""
+    csv = [h for h in hits if _format_of(h).kind == "csv"]
+    if csv_rate or len(csv) == len(hits):
+        return hits
+    tables = [h for h in csv if not h.with_suffix(".json").exists()]
+    if tables:
+        shown = ", ".join(str(t.relative_to(folder)) for t in tables[:5])
+        more = f" and {len(tables) - 5} more" if len(tables) > 5 else ""
+        notes.append(f"{folder}: {len(tables)} CSV file{'s' if len(tables) > 1 else ''} beside "
+                     f"its records taken as tables, not records ({shown}{more}); name a CSV, "
+                     "give --fs or a sidecar JSON to read one as a record")
+    return [h for h in hits if h not in tables]
 
 
 def source_inputs(src: Source, cfg: ReadConfig) -> list[tuple[str, str]]:
@@ -131,12 +151,15 @@ def record_length(src: Source) -> tuple[int, float]:
         return 0, 0.0
 
 
-def source_leads(src: Source, cfg: ReadConfig) -> list[str] | None:
+def source_leads(src: Source, cfg: ReadConfig, errors: list[str] | None = None) -> list[str] | None:
     """Canonical ECG leads of a source, from its header when the format allows; None when it
-    cannot be read (the run then reports the record's own error)."""
+    cannot be read (the run then reports the record's own error; ``errors`` collects it)."""
     try:
         return src.format.leads(src.path, cfg)
-    except Exception:
+    except Exception as exc:
+        if errors is not None:
+            errors.append(str(exc) if isinstance(exc, RecordError) else
+                          f"{src.path}: {type(exc).__name__}: {exc}")
         return None
 
 
