@@ -26,8 +26,8 @@ TABLE_FILES = (BEATS_TABLE, LEADS_TABLE, RECORDS_TABLE, WINDOWS_TABLE)
 BEATS: list[tuple[str, str]] = [
     ("beat_id", "str"), ("record", "str"), ("r_sample", "int64"), ("r_time_s", "float64"),
     ("rr_prev_s", "float64"), ("rr_next_s", "float64"), ("included", "bool"),
-    ("is_beat", "bool"), ("reasons", "str"), ("tensor_index", "int64"), ("flags", "str"),
-    ("label", "str"), ("class", "str"), ("rhythm", "str"), ("detect_conf", "float64"),
+    ("is_beat", "bool"), ("reasons", "str"), ("tensor_index", "int64"), ("beat_flags", "str"),
+    ("label", "str"), ("beat_class", "str"), ("rhythm", "str"), ("detect_conf", "float64"),
     ("n_leads_seen", "int64"), ("template_corr", "float64"), ("qrs_match", "float64"),
     ("hf_ratio", "float64"), ("bad_fraction", "float64"), ("amplitude_z", "float64"),
     ("window_grade", "str"), ("second_detector", "bool"),

@@ -39,7 +39,7 @@ class BeatDataset(_TorchDataset):
         self.class_names = ds.class_names
         self._start, self._stop = ds.manifest["splits"][split]["rows"]
         index = {c: i for i, c in enumerate(self.class_names)}
-        self.labels = np.array([index.get(c, len(self.class_names) - 1) for c in rows["class"]],
+        self.labels = np.array([index.get(c, len(self.class_names) - 1) for c in rows["beat_class"]],
                                dtype=np.int64)
         self.beat_ids = rows["beat_id"].tolist()
         self._beats = None

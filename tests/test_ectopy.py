@@ -88,7 +88,7 @@ def test_bigeminy_is_good_for_noise_and_flagged_for_rhythm():
     assert (full.tsqi > 0.9).mean() >= 0.9  # each beat matches its own kind
     v = b[b.label == "V"]
     assert len(v) >= 70 and v.included.mean() >= 0.97 and v.is_beat.all()
-    assert b.loc[b.included, "flags"].str.contains("unusual_rhythm").mean() >= 0.9
+    assert b.loc[b.included, "beat_flags"].str.contains("unusual_rhythm").mean() >= 0.9
     assert not b.reasons.str.contains("noisy|in_noise").any()
 
 
@@ -201,4 +201,4 @@ def test_class_yield_in_records_table_and_manifest(demo_run):
         assert recs[f"n_ref_{c}"].sum() == t["reference"]
         assert recs[f"n_kept_{c}"].sum() == t["kept"] <= t["detected"] <= t["reference"]
         # kept reference beats of a class are kept rows carrying that class's label
-        assert t["kept"] == int((beats.included & (beats["class"] == c)).sum())
+        assert t["kept"] == int((beats.included & (beats["beat_class"] == c)).sum())

@@ -38,7 +38,7 @@ def test_mitdb_100_class_counts(tmp_path):
     run([str(base)], tmp_path / "out")
     t = pd.read_parquet(tmp_path / "out" / "beats.parquet")
     kept = t[t.included]
-    counts = kept["class"].value_counts().to_dict()
+    counts = kept["beat_class"].value_counts().to_dict()
     assert counts["S"] == 33 and counts["V"] == 1 and counts["N"] >= 2239 - 5
     assert kept.rhythm.eq("N").all()
 
@@ -118,8 +118,8 @@ def test_run_with_train_classes_patients_and_dataset_norm(tmp_path):
     assert m["tensor"]["normalization"]["statistics_from"] == "the training split, per lead"
     tr = t[t.split == "train"]
     # night02's ventricular and atrial beats are training beats of other classes: excluded
-    assert not tr[tr["class"] != "N"].included.any()
-    assert tr[tr["class"] != "N"].reasons.str.contains("not_train_class").all()
+    assert not tr[tr["beat_class"] != "N"].included.any()
+    assert tr[tr["beat_class"] != "N"].reasons.str.contains("not_train_class").all()
     n7 = t[t.record == "night07"]
     assert not n7.included.any() and (n7.reasons == "not_in_split_lists").sum() > 150
     x = np.load(out / "beats.npy", mmap_mode="r")

@@ -120,7 +120,7 @@ def test_ectopic_beats_survive_quality(demo_run):
     out, _ = demo_run
     t = pd.read_parquet(out / "beats.parquet")
     v = t[t.label == "V"]
-    assert v.included.all() and v["flags"].str.contains("unlike_neighbours").all()
+    assert v.included.all() and v["beat_flags"].str.contains("unlike_neighbours").all()
 
 
 def test_qrs_match_compares_leads_together_and_excludes_self():

@@ -86,8 +86,8 @@ def test_demo_faults_are_found_where_injected(demo_run):
     masked = ~mask[t7.tensor_index.to_numpy(), 0]
     assert masked.any() and not (masked & ~clipped).any()
     assert mask[t7.tensor_index.to_numpy(), 1].all()
-    assert t7["flags"].to_numpy()[masked].astype(str).tolist() and all(
-        "partial_leads" in f for f in t7["flags"].to_numpy()[masked])
+    assert t7["beat_flags"].to_numpy()[masked].astype(str).tolist() and all(
+        "partial_leads" in f for f in t7["beat_flags"].to_numpy()[masked])
     # noisy stretches: excluded beats lie inside them, beats outside are kept
     for rec, reason in (("night05", "high_freq_noise"),):
         spans = [(f["start"], f["end"]) for f in TRUTH["records"][rec]["faults"]]

@@ -218,7 +218,7 @@ def test_kept_summary_and_rule_shortcut_agree_with_the_rules():
 
     from prep.dataset.plan import rule_reasons, rules_apply
     from prep.dataset.shards import kept_summary
-    b = pd.DataFrame({"included": [True, False, True, True], "class": ["N", "V", None, "V"],
+    b = pd.DataFrame({"included": [True, False, True, True], "beat_class": ["N", "V", None, "V"],
                       "r_sample": [10, 20, 30, 40], "tensor_index": [0, -1, 1, 2]})
     got = kept_summary(b)
     assert got["in_order"] and dict(map(tuple, got["classes"])) == {"N": 1, None: 1, "V": 1}

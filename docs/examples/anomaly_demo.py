@@ -41,5 +41,5 @@ top = np.argsort(-err)[:10]
 print(f"trained on {len(train)} normal beats; scored {len(test)} test beats")
 print(f"{'beat_id':<18}{'class':>7}{'error':>9}")
 for i in top:
-    print(f"{test_rows.beat_id[i]:<18}{test_rows['class'][i]:>7}{err[i]:>9.3f}")
-TOP_CLASSES = test_rows["class"].to_numpy()[top]
+    print(f"{test_rows.beat_id[i]:<18}{test_rows.beat_class[i]:>7}{err[i]:>9.3f}")
+TOP_CLASSES = test_rows.beat_class.to_numpy()[top]

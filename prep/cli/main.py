@@ -234,7 +234,7 @@ def reasons() -> None:
         for code, (stage, text) in REASONS.items():
             if group(code) == g:
                 typer.echo(f"  {code:<22} [{stage}] {text}")
-    typer.echo("Flags on kept beats (beats.parquet 'flags'):")
+    typer.echo("Flags on kept beats (beats.parquet 'beat_flags'):")
     for code, text in FLAGS.items():
         typer.echo(f"  {code:<18} {text}")
 
@@ -261,7 +261,7 @@ def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
     typer.echo(f"beat      {e['beat_id']}")
     typer.echo(f"record    {e['record']} (patient {e['patient']}, split {e['split'] or '-'})")
     typer.echo(f"time      {e['r_time_s']:.3f} s (sample {e['r_sample']})")
-    typer.echo(f"label     {e['label'] or '-'} (class {e['class']})")
+    typer.echo(f"label     {e['label'] or '-'} (class {e['beat_class']})")
     typer.echo(f"leads     {', '.join(e['leads_used']) or '-'} used")
     typer.echo("status    " + (f"kept, tensor row {e['tensor_index']}" if e["included"]
                                else "excluded, " + ("a heartbeat" if e["is_beat"] else
@@ -272,7 +272,7 @@ def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
             ev = f": {x['score_name']} = {x['score']}, threshold {x['threshold_name']} = {x['threshold']}"
         typer.echo(f"reason    {x['code']} [stage {x['stage']}, group {x['group']}] "
                    f"{x['explanation']}{ev}")
-    for x in e["flags"]:
+    for x in e["beat_flags"]:
         typer.echo(f"flag      {x['code']}: {x['explanation']}")
     for w in e["windows"]:
         typer.echo(f"window    {w['lead']}: {w['grade']} ({w['start_s']}-{w['end_s']} s)" +

@@ -81,7 +81,7 @@ def assemble(results: list[RecordResult], cfg: Config, axis: list[str], prov: Pr
         kept = results[k].store.kept if results[k].store is not None else None
         if kept and kept["in_order"] and not plan.rules_apply(k):
             return np.arange(results[k].tensor.shape[0])  # no table read needed
-        b = columns_of(results[k], ["included", "class", "r_sample", "tensor_index"])
+        b = columns_of(results[k], ["included", "beat_class", "r_sample", "tensor_index"])
         return np.asarray(b["tensor_index"])[final_rows(b, plan.rule_reasons(k, b))]
 
     tensor, mask, center, scale, norm_note = _gather_normalized(

@@ -123,14 +123,14 @@ def _check_splits_and_labels(table, records, manifest: dict, n: int) -> list[str
     if n and sum((v or [0, 0])[1] - (v or [0, 0])[0] for v in ranges.values()) != n:
         out.append("manifest.json: split row ranges do not cover every tensor row")
     table_classes = manifest.get("labels", {}).get("classes")
-    if table_classes is not None and "class" in table:
+    if table_classes is not None and "beat_class" in table:
         want = beat_classes(table["label"].fillna("").astype(str).to_numpy(), table_classes)
-        if not (want == table["class"].to_numpy()).all():
+        if not (want == table["beat_class"].to_numpy()).all():
             out.append("beats.parquet: class does not follow label through the manifest's table")
         tc = set(manifest.get("labels", {}).get("train_classes", []))
         if tc:
             tr = table[table["included"] & (table["split"] == "train")]
-            off = sorted(set(tr["class"]) - tc)
+            off = sorted(set(tr["beat_class"]) - tc)
             if off:
                 out.append(f"beats.parquet: training split holds classes {off} outside "
                            f"train_classes {sorted(tc)}")

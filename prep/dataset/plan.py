@@ -57,7 +57,7 @@ def kept_classes(r: RecordResult) -> dict:
     kept = r.store.kept if r.beats is None and r.store is not None else None
     if kept is None:
         kept = kept_summary(pd.DataFrame(columns_of(
-            r, ["included", "class", "r_sample", "tensor_index"])))
+            r, ["included", "beat_class", "r_sample", "tensor_index"])))
     return {k: int(v) for k, v in kept["classes"]}
 
 
@@ -75,7 +75,7 @@ def rule_reasons(b, split: str, fixed: bool, train_classes: set) -> np.ndarray:
     if fixed and not split:
         extra[inc] = "not_in_split_lists"
     elif split == "train" and train_classes:
-        off = inc & ~np.isin(np.asarray(b["class"], dtype=object), sorted(train_classes))
+        off = inc & ~np.isin(np.asarray(b["beat_class"], dtype=object), sorted(train_classes))
         extra[off] = "not_train_class"
     return extra
 

@@ -100,7 +100,7 @@ def kept_summary(beats: pd.DataFrame | None) -> dict:
     if beats is None or not len(beats.columns):
         return {"classes": [], "in_order": True}
     inc = beats["included"].to_numpy(bool)
-    vc = beats.loc[inc, "class"].value_counts(dropna=False)
+    vc = beats.loc[inc, "beat_class"].value_counts(dropna=False)
     ti = beats["tensor_index"].to_numpy()[inc]
     rs = beats["r_sample"].to_numpy()[inc]
     in_order = bool(np.array_equal(ti, np.arange(ti.size)) and np.all(np.diff(rs) >= 0))

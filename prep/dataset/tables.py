@@ -46,7 +46,7 @@ def tabulate(results: list[RecordResult], plan: Plan, tables_to: Path | None) ->
     for k, (r, place) in enumerate(zip(results, plan.places)):
         t = beats_arrow(r, schema_b)
         cols = {c: t.column(c).to_numpy(zero_copy_only=False)
-                for c in ("included", "class", "r_sample")}
+                for c in ("included", "beat_class", "r_sample")}
         more = plan.rule_reasons(k, cols)
         t = _with_rule_exclusions(t, cols, more)
         rows = final_rows(cols, more)
@@ -58,7 +58,7 @@ def tabulate(results: list[RecordResult], plan: Plan, tables_to: Path | None) ->
                 reason_counts[c] = reason_counts.get(c, 0) + int(d["counts"])
         if place.split in split_classes and rows.size:
             sc = split_classes[place.split]
-            for d in pc.value_counts(t.column("class").take(pa.array(rows))).to_pylist():
+            for d in pc.value_counts(t.column("beat_class").take(pa.array(rows))).to_pylist():
                 if d["values"] is not None:
                     sc[str(d["values"])] = sc.get(str(d["values"]), 0) + int(d["counts"])
         n_beats += t.num_rows
@@ -82,12 +82,12 @@ def _with_rule_exclusions(t, cols: dict, more: np.ndarray):
     if not hit.any():
         return t
     reasons = t.column("reasons").to_numpy(zero_copy_only=False).astype(object)
-    flags = t.column("flags").to_numpy(zero_copy_only=False).astype(object)
+    flags = t.column("beat_flags").to_numpy(zero_copy_only=False).astype(object)
     reasons[hit] = [reasons_mod.join([c]) for c in more[hit]]
     flags[hit] = ""
     inc = cols["included"].astype(bool)
     inc[hit] = False
-    for name, v, typ in (("reasons", reasons, pa.string()), ("flags", flags, pa.string()),
+    for name, v, typ in (("reasons", reasons, pa.string()), ("beat_flags", flags, pa.string()),
                          ("included", inc, pa.bool_())):
         t = t.set_column(t.schema.get_field_index(name), name, pa.array(v, typ))
     return t

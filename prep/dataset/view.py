@@ -176,7 +176,7 @@ class Dataset:
                             threshold=cfg[sec][key])
             reasons.append(item)
         flags = [{"code": f, "explanation": FLAGS.get(f, "")}
-                 for f in filter(None, str(row["flags"]).split(";"))]
+                 for f in filter(None, str(row["beat_flags"]).split(";"))]
         rec_leads = self.leads[self.leads["record"] == row["record"]]
         windows = []
         wpath = self.path / WINDOWS_TABLE
@@ -192,10 +192,10 @@ class Dataset:
         return {"beat_id": beat_id, "record": row["record"], "patient": row.get("patient", ""),
                 "split": row.get("split", ""), "r_sample": int(row["r_sample"]),
                 "r_time_s": float(row["r_time_s"]), "label": row["label"],
-                "class": row.get("class", ""), "included": bool(row["included"]),
+                "beat_class": row.get("beat_class", ""), "included": bool(row["included"]),
                 "tensor_index": int(row["tensor_index"]),
                 "is_beat": bool(row["is_beat"]) if "is_beat" in row else True,
-                "reasons": reasons, "flags": flags,
+                "reasons": reasons, "beat_flags": flags,
                 "scores": {c: _num(row[c]) for c in ("detect_conf", "n_leads_seen",
                                                      "template_corr", "hf_ratio", "bad_fraction")},
                 "leads_used": rec_leads[rec_leads["used"]]["lead"].tolist(),

@@ -75,14 +75,14 @@ def _class_means(ds) -> str:
     kept = t[t.included].sort_values("tensor_index")
     if kept.empty:
         return "<p>No kept beats.</p>"
-    classes = [c for c in ds.class_names if (kept["class"] == c).any()]
+    classes = [c for c in ds.class_names if (kept["beat_class"] == c).any()]
     axis = ds.lead_axis
     n_show = min(len(axis), 6)
     fig, axes = plt.subplots(n_show, len(classes), figsize=(2.6 * len(classes) + 1, 1.8 * n_show + 0.6),
                              squeeze=False, sharex=True)
     x = np.linspace(0, 1, ds.beats.shape[2])
     for ci, c in enumerate(classes):
-        idx = kept.loc[kept["class"] == c, "tensor_index"].to_numpy()
+        idx = kept.loc[kept["beat_class"] == c, "tensor_index"].to_numpy()
         idx = idx[:: max(1, idx.size // 2000)]  # at most ~2000 beats per class
         for j in range(n_show):
             ax = axes[j, ci]
@@ -187,13 +187,13 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
           for k, v in c["excluded_by_reason"].items()]
     parts.append(_table(pd.DataFrame(ex or [{"reason": "-", "beats": 0, "meaning": ""}]),
                         "Excluded beats per reason code"))
-    fl = t.loc[t.included, "flags"].str.split(";").explode()
+    fl = t.loc[t.included, "beat_flags"].str.split(";").explode()
     fl = fl[fl != ""].value_counts()
     parts.append(_table(pd.DataFrame({"flag": fl.index, "kept beats": fl.values,
                                       "meaning": [FLAGS.get(f, "") for f in fl.index]})
                         if len(fl) else pd.DataFrame([{"flag": "-", "kept beats": 0}]),
                         "Warnings on kept beats"))
-    cls = pd.crosstab(t["split"].replace("", "-"), t["class"], values=t["included"],
+    cls = pd.crosstab(t["split"].replace("", "-"), t["beat_class"], values=t["included"],
                       aggfunc="sum").fillna(0).astype(int)
     cls.columns.name = None
     cls = cls.reset_index()
