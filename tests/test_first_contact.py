@@ -118,3 +118,35 @@ def test_a_failed_record_takes_no_split(tmp_path):
     rec = pd.read_parquet(tmp_path / "o" / "records.parquet").set_index("record")
     assert rec.loc["broken", "status"] == "failed" and rec.loc["broken", "split"] == ""
     assert s.exit_code == 1
+
+
+def _beatmill(*args):
+    import subprocess
+    import sys
+    return subprocess.run([sys.executable, "-m", "prep.cli.main", *args], capture_output=True,
+                          text=True, timeout=120)
+
+
+def test_every_error_has_one_style_and_usage_mistakes_exit_2(tmp_path):
+    r = _beatmill("run", "--bogus")
+    assert r.returncode == 2 and r.stderr.startswith("beatmill: error: No such option: --bogus")
+    r = _beatmill("check")
+    assert r.returncode == 2 and r.stderr.startswith("beatmill: error: Missing argument")
+    r = _beatmill("check", str(tmp_path / "nothing"))
+    assert r.returncode == 2 and "not a beatmill dataset" in r.stderr
+    r = _beatmill("run", str(DEMO / "night01.hea"), "-v", "2", "--out", str(tmp_path / "o"))
+    assert r.returncode == 2 and "a value?" in r.stderr
+    r = _beatmill("--version")
+    assert r.returncode == 0 and r.stdout.startswith("beatmill ")
+
+
+def test_help_shows_names_not_python_types():
+    r = _beatmill("run", "--help")
+    assert r.returncode == 0 and "run [OPTIONS] INPUTS..." in r.stdout
+    for bad in ("{inputs}", "<list[str]>", "<bool>", "[default: 0]"):
+        assert bad not in r.stdout, bad
+
+
+def test_a_require_rule_resolves_lead_aliases():
+    from prep.report.survey import parse_rule
+    assert parse_rule("MLII:usable>=0.9") == ("II", "usable", ">=", 0.9)

@@ -13,15 +13,52 @@ from pathlib import Path
 from typing import List, Optional
 
 import typer
+import typer.core
 
-app = typer.Typer(add_completion=False, no_args_is_help=True,
-                  context_settings={"help_option_names": ["-h", "--help"]},
+
+def _plain_argument_help() -> None:
+    """Show arguments as their metavar (``INPUTS...``), without typer's ``{...}`` and type
+    labels; display only, and skipped where a typer version lacks these hooks."""
+    arg = typer.core.TyperArgument
+    if hasattr(arg, "_usage_display_name") and hasattr(arg, "display_type_rich"):
+        arg._usage_display_name = lambda self: (self.metavar or self.name.upper()) + (
+            "..." if self.nargs != 1 else "")
+        arg.display_type_rich = lambda self, ctx: None
+
+
+_plain_argument_help()
+
+app = typer.Typer(add_completion=False, no_args_is_help=True, rich_markup_mode=None,
+                  pretty_exceptions_enable=False,
+                  context_settings={"help_option_names": ["-h", "--help"],
+                                    "max_content_width": 100},
                   help="Turn raw ECG records into clean, fixed-length, normalized beat tensors "
                        "with a provenance manifest.\n\nExample:\n\n"
                        "  beatmill run demo_records --out runs/demo\n\n"
                        "Research use only: not a medical device, not for diagnosis.")
 
 log = logging.getLogger("prep")
+
+
+def _version(value: bool) -> None:
+    if value:
+        from prep import __version__
+        typer.echo(f"beatmill {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _root(version: bool = typer.Option(False, "--version", callback=_version, is_eager=True,
+                                       help="Print the version and exit.")) -> None:
+    """Turn raw ECG records into clean, fixed-length, normalized beat tensors with a provenance
+    manifest.
+
+    Example:
+
+      beatmill run demo_records --out runs/demo
+
+    Research use only: not a medical device, not for diagnosis.
+    """
 
 
 def _setup_logging(verbose: int, quiet: bool) -> None:
@@ -39,29 +76,29 @@ def _fail(msg: str, code: int = 2) -> None:
 
 
 @app.command()
-def run(inputs: List[str] = typer.Argument(..., help="WFDB header files, record base names, CSV "
+def run(inputs: List[str] = typer.Argument(..., metavar="INPUTS", help="WFDB header files, record base names, CSV "
                                            "files or folders to search."),
-        out: Path = typer.Option(..., "--out", "-o", help="Dataset folder to write."),
+        out: Path = typer.Option(..., "--out", "-o", metavar="OUT", help="Dataset folder to write."),
         config: Optional[Path] = typer.Option(None, "--config", "-c",
-                                              help="TOML configuration (see 'beatmill config')."),
-        leads: Optional[str] = typer.Option(None, "--leads", help="Lead axis, comma-separated, "
+                                              metavar="CONFIG", help="TOML configuration (see 'beatmill config')."),
+        leads: Optional[str] = typer.Option(None, "--leads", metavar="LEADS", help="Lead axis, comma-separated, "
                                             "e.g. MLII,V5 (aliases understood)."),
-        fs: Optional[float] = typer.Option(None, "--fs", help="Sampling rate of CSV inputs in Hz."),
+        fs: Optional[float] = typer.Option(None, "--fs", metavar="FS", help="Sampling rate of CSV inputs in Hz."),
         train_classes: Optional[str] = typer.Option(None, "--train-classes",
-                                                    help="Classes kept in the training split, "
+                                                    metavar="TRAIN_CLASSES", help="Classes kept in the training split, "
                                                          "comma-separated, e.g. N."),
-        patients: Optional[Path] = typer.Option(None, "--patients", help="CSV record,patient "
+        patients: Optional[Path] = typer.Option(None, "--patients", metavar="PATIENTS", help="CSV record,patient "
                                                 "mapping for patient-wise splits."),
-        seed: Optional[int] = typer.Option(None, "--seed", help="Seed of the patient split."),
+        seed: Optional[int] = typer.Option(None, "--seed", metavar="SEED", help="Seed of the patient split."),
         workers: Optional[int] = typer.Option(None, "--workers", "-w", min=1,
-                                              help="Parallel processes (default: all cores)."),
-        shards: Optional[str] = typer.Option(None, "--shards", help="Where per-record shards go "
+                                              metavar="WORKERS", help="Parallel processes (default: all cores)."),
+        shards: Optional[str] = typer.Option(None, "--shards", metavar="SHARDS", help="Where per-record shards go "
                                              "(folder or fsspec URL; default OUT/.shards)."),
-        dask: Optional[str] = typer.Option(None, "--dask", help="dask.distributed scheduler "
+        dask: Optional[str] = typer.Option(None, "--dask", metavar="DASK", help="dask.distributed scheduler "
                                            "address, or 'local' for a LocalCluster."),
         overwrite: bool = typer.Option(False, "--overwrite",
                                        help="Replace an existing dataset folder."),
-        verbose: int = typer.Option(0, "--verbose", "-v", count=True, help="More messages."),
+        verbose: int = typer.Option(0, "--verbose", "-v", count=True, show_default=False, help="More messages."),
         quiet: bool = typer.Option(False, "--quiet", "-q", help="Errors only.")) -> None:
     """Process records and write a dataset folder, split by patient.
 
@@ -158,7 +195,7 @@ def _progress(quiet: bool):
 
 @app.command("config")
 def config_cmd(check: Optional[Path] = typer.Option(None, "--check",
-                                                    help="Validate this TOML file instead.")) -> None:
+                                                    metavar="CHECK", help="Validate this TOML file instead.")) -> None:
     """Print the fully commented default configuration (TOML).
 
     Example:
@@ -179,7 +216,7 @@ def config_cmd(check: Optional[Path] = typer.Option(None, "--check",
 
 
 @app.command()
-def check(run_dir: Path = typer.Argument(..., help="A dataset folder written by 'beatmill run'.")) -> None:
+def check(run_dir: Path = typer.Argument(..., metavar="RUN_DIR", help="A dataset folder written by 'beatmill run'.")) -> None:
     """Verify a dataset: tensors, mask and tables agree and every file matches its SHA-256.
 
     Example:
@@ -201,7 +238,7 @@ def check(run_dir: Path = typer.Argument(..., help="A dataset folder written by 
 
 
 @app.command()
-def demo(out: Path = typer.Option(Path("demo_records"), "--out", "-o", help="Folder to write."),
+def demo(out: Path = typer.Option(Path("demo_records"), "--out", "-o", metavar="OUT", help="Folder to write."),
          overwrite: bool = typer.Option(False, "--overwrite", help="Replace files already there.")) -> None:
     """Write the synthetic demo records (byte for byte the same every time).
 
@@ -227,22 +264,24 @@ def reasons() -> None:
     """
     from prep.quality.reasons import FLAGS, REASONS, group
 
-    typer.echo("Exclusion reasons (beats.parquet 'reasons'), by group; rows with a not_a_beat "
-               "reason have is_beat False:")
+    width = max(len(c) for c in [*REASONS, *FLAGS]) + 2
+    typer.echo("Exclusion reasons (beats.parquet 'reasons'), by group and stage. A beat can hold "
+               "several;\nthe manifest counts it under each, so its per-reason counts can sum to "
+               "more than\nthe excluded beats. Rows with a not_a_beat reason have is_beat False.")
     for g in ("not_a_beat", "beat", "split"):
-        typer.echo(f" {g}:")
-        for code, (stage, text) in REASONS.items():
-            if group(code) == g:
-                typer.echo(f"  {code:<22} [{stage}] {text}")
-    typer.echo("Flags on kept beats (beats.parquet 'beat_flags'):")
-    for code, text in FLAGS.items():
-        typer.echo(f"  {code:<18} {text}")
+        typer.echo(f"\n {g}:")
+        for code, (stage, text) in sorted(((c, v) for c, v in REASONS.items() if group(c) == g),
+                                          key=lambda kv: (kv[1][0], kv[0])):
+            typer.echo(f"  {code:<{width}}[{stage}] {text}")
+    typer.echo("\nFlags on kept beats (beats.parquet 'beat_flags'):")
+    for code, text in sorted(FLAGS.items()):
+        typer.echo(f"  {code:<{width}}{text}")
 
 
 @app.command()
-def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
-        beat_id: str = typer.Argument(..., help="A beat_id from beats.parquet, e.g. night05:10536."),
-        plot: Optional[Path] = typer.Option(None, "--plot", help="Also draw the beat in context "
+def why(run_dir: Path = typer.Argument(..., metavar="RUN_DIR", help="A dataset folder."),
+        beat_id: str = typer.Argument(..., metavar="BEAT_ID", help="A beat_id from beats.parquet, e.g. night05:10536."),
+        plot: Optional[Path] = typer.Option(None, "--plot", metavar="PLOT", help="Also draw the beat in context "
                                             "to this PNG file.")) -> None:
     """Explain one beat: where it is, its label, kept or not, and every reason with its evidence.
 
@@ -291,19 +330,19 @@ def why(run_dir: Path = typer.Argument(..., help="A dataset folder."),
 
 
 @app.command()
-def leads(inputs: List[str] = typer.Argument(..., help="Records or folders to survey."),
-          require: List[str] = typer.Option([], "--require", help="Rule every (or one) lead must "
+def leads(inputs: List[str] = typer.Argument(..., metavar="INPUTS", help="Records or folders to survey."),
+          require: List[str] = typer.Option([], "--require", metavar="REQUIRE", help="Rule every (or one) lead must "
                                             "meet, e.g. 'usable>=0.8' or 'II:good>=0.5'; "
                                             "repeatable."),
-          config: Optional[Path] = typer.Option(None, "--config", "-c", help="TOML configuration."),
-          fs: Optional[float] = typer.Option(None, "--fs", help="Sampling rate of CSV inputs.")) -> None:
+          config: Optional[Path] = typer.Option(None, "--config", "-c", metavar="CONFIG", help="TOML configuration."),
+          fs: Optional[float] = typer.Option(None, "--fs", metavar="FS", help="Sampling rate of CSV inputs.")) -> None:
     """Survey lead quality without writing a dataset; exit 1 when a lead fails a --require rule.
 
     Measures: usable (share of windows not unusable), good (share of good windows).
 
     Example:
 
-      beatmill leads demo_records --require usable>=0.9
+      beatmill leads demo_records --require 'usable>=0.9'
     """
     from prep.config import Config
     from prep.errors import ConfigError
@@ -334,9 +373,9 @@ def leads(inputs: List[str] = typer.Argument(..., help="Records or folders to su
 
 
 @app.command()
-def report(run_dir: Path = typer.Argument(..., help="A dataset folder."),
+def report(run_dir: Path = typer.Argument(..., metavar="RUN_DIR", help="A dataset folder."),
            out: Optional[Path] = typer.Option(None, "--out", "-o",
-                                              help="HTML file to write (default RUN_DIR/report.html).")
+                                              metavar="OUT", help="HTML file to write (default RUN_DIR/report.html).")
            ) -> None:
     """Write a self-contained HTML report to read before training on a dataset.
 
@@ -359,11 +398,39 @@ def report(run_dir: Path = typer.Argument(..., help="A dataset folder."),
 
 
 def main() -> None:
+    """The ``beatmill`` command: every error in one style (``beatmill: error: ...``), exit 2
+    for usage mistakes, 130 on Ctrl-C."""
+    cx = _click_exceptions()
     try:
-        app()
-    except KeyboardInterrupt:
+        code = app(standalone_mode=False)
+    except cx.UsageError as exc:
+        if type(exc).__name__ == "NoArgsIsHelpError":  # bare 'beatmill': the help, not an error
+            typer.echo(exc.ctx.get_help())
+            sys.exit(0)
+        where = exc.ctx.command_path if exc.ctx else "beatmill"
+        typer.echo(f"beatmill: error: {exc.format_message()} (see '{where} --help')", err=True)
+        sys.exit(2)
+    except (KeyboardInterrupt, getattr(cx, "Abort", KeyboardInterrupt)):
         typer.echo("beatmill: interrupted", err=True)
         sys.exit(130)
+    except BrokenPipeError:  # output piped into a reader that stopped (head, less)
+        sys.stderr = open(os.devnull, "w")
+        sys.exit(0)
+    except cx.ClickException as exc:
+        typer.echo(f"beatmill: error: {exc.format_message()}", err=True)
+        sys.exit(exc.exit_code)
+    sys.exit(code if isinstance(code, int) else 0)
+
+
+def _click_exceptions():
+    """The exceptions module of the click typer runs on (recent typer versions bundle their own
+    copy of click)."""
+    try:
+        from typer import _click
+        return _click.exceptions
+    except ImportError:
+        import click
+        return click.exceptions
 
 
 if __name__ == "__main__":

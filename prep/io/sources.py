@@ -91,8 +91,11 @@ def find_sources(items: list[str | Path], *, notes: list[str] | None = None,
             if named:
                 found.append((_format_of(named[0]), named[0]))
             else:
+                hint = (" (a value? -v, -q and --overwrite take none: write -vv or --overwrite "
+                        "alone)" if str(item).lower() in ("true", "false", "yes", "no")
+                        or str(item).isdigit() else "")
                 problems.append(f"{p}: no such record (give a record file, a WFDB record base "
-                                "name or a folder)")
+                                f"name or a folder){hint}")
     uniq = sorted({(f.kind, h.resolve()) for f, h in found}, key=lambda t: str(t[1]))
     bases = [(k, FORMATS[k].record_path(h)) for k, h in uniq]
     parts: set[Path] = set()

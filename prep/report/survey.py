@@ -9,6 +9,7 @@ import pandas as pd
 from prep.config import Config
 from prep.errors import BeatmillError, ConfigError
 from prep.io.sources import find_sources, read_source
+from prep.leads import canonical_lead
 from prep.pipeline.record import beats_of_record
 
 _OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt}
@@ -21,18 +22,19 @@ def parse_rule(text: str) -> tuple[str | None, str, str, float]:
     m = _RULE.match(text)
     if not m:
         raise ConfigError(f"--require {text!r}: write MEASURE OP VALUE or LEAD:MEASURE OP VALUE, "
-                          "with MEASURE usable or good, OP one of >= <= > <, e.g. usable>=0.8")
+                          "with MEASURE usable or good, OP one of >= <= > <, in quotes so the "
+                          "shell leaves > alone, e.g. --require 'usable>=0.8'")
     v = float(m["value"])
     if not 0 <= v <= 1:
         raise ConfigError(f"--require {text!r}: the value is a share between 0 and 1")
-    return m["lead"], m["what"], m["op"], v
+    return (canonical_lead(m["lead"]) if m["lead"] else None), m["what"], m["op"], v
 
 
 def survey(inputs, cfg: Config) -> tuple[pd.DataFrame, list[tuple[str, str]]]:
     """One row per record and ECG lead: used, usable and good shares, window counts, main fault."""
     found, problems = find_sources(list(inputs))
-    if not found and problems:
-        raise ConfigError(problems)
+    if problems or not found:
+        raise ConfigError(problems or ["no input records given"])
     rows, failed = [], []
     for src in found:
         try:
