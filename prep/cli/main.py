@@ -160,6 +160,9 @@ def _print_summary(summary) -> None:
                f"({summary.n_failed} failed, {summary.n_no_lead} without a usable lead), "
                f"{summary.n_beats} beats detected, {summary.n_kept} kept; lead axis "
                f"{','.join(summary.axis)}")
+    if summary.n_reused:
+        typer.echo(f"resumed: {_plural(summary.n_reused, 'record')} taken from committed shards, "
+                   f"{summary.n_records - summary.n_reused} processed now")
     if summary.splits:
         typer.echo(split_summary(summary.splits))
     text = yield_summary(summary.class_yield) if summary.class_yield else ""
@@ -170,9 +173,16 @@ def _print_summary(summary) -> None:
 
 
 def _progress(quiet: bool):
-    """A Rich progress bar on an interactive stderr; otherwise nothing."""
-    if quiet or not sys.stderr.isatty() or os.environ.get("CI"):
+    """A Rich progress bar on an interactive stderr; off a terminal (a log file, CI) one line
+    per record; nothing with --quiet."""
+    if quiet:
         return None, lambda: None
+    if not sys.stderr.isatty() or os.environ.get("CI"):
+        def line(res, done, total):
+            what = res.error if res.status != "ok" else f"{res.n_beats} beats, {res.n_kept} kept"
+            typer.echo(f"beatmill: record {done}/{total} {res.name}: {res.status}, {what}",
+                       err=True)
+        return line, lambda: None
     from rich.console import Console
     from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                                TimeElapsedColumn, TimeRemainingColumn)

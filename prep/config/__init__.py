@@ -207,14 +207,21 @@ class Config:
             lines.append(f"[{name}]")
             for f in fields(klass):
                 if comments:
-                    lines.append(f"# {f.metadata['doc']}")
+                    lines += _comment(f.metadata["doc"])
                     allowed = f.metadata.get("choices")
                     if allowed:
-                        lines.append(f"# allowed: {', '.join(allowed)}")
-                    lines.append(f"# default source: {f.metadata['source']}")
+                        lines += _comment(f"allowed: {', '.join(allowed)}")
+                    lines += _comment(f"default source: {f.metadata['source']}")
                 lines.append(f"{f.name} = {_toml_value(getattr(section, f.name))}")
             lines.append("")
         return "\n".join(lines)
+
+
+def _comment(text: str, width: int = 99) -> list[str]:
+    """A TOML comment wrapped to ``width`` characters a line."""
+    import textwrap
+    return textwrap.wrap(text, width, initial_indent="# ", subsequent_indent="# ",
+                         break_on_hyphens=False, break_long_words=False)
 
 
 def _toml_value(v: Any) -> str:

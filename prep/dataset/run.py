@@ -42,6 +42,7 @@ class RunSummary:
     splits: dict | None = None
     class_yield: dict | None = None   # the manifest's class_yield section
     warnings: list | None = None      # the manifest's warnings (axis gaps, empty splits, ...)
+    n_reused: int = 0                 # records taken from committed shards (a resumed run)
 
 
 def run(sources: list[str | Path], out: str | Path, *, config: Config | None = None,
@@ -90,10 +91,12 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         raise
     job = _Job(found, inputs, cfg, axis, mapping, str(shards) if shards else str(out / ".shards"),
                _shard_hash(json.dumps({"config": chash, "axis": axis})))
-    results = _process(job, workers, dask, pool, progress)
+    results, n_reused = _process(job, workers, dask, pool, progress)
     prov = Provenance([str(s) for s in sources], [str(s.path) for s in found], mapping, pmap,
                       extra, gaps)
-    return _summary(out, _write(out, results, cfg, axis, prov))
+    summary = _summary(out, _write(out, results, cfg, axis, prov))
+    summary.n_reused = n_reused
+    return summary
 
 
 @dataclass
@@ -120,9 +123,9 @@ def _find(sources: list[str | Path], cfg: Config) -> list[Source]:
     return found
 
 
-def _process(job: _Job, workers, dask, pool, progress) -> list[RecordResult]:
+def _process(job: _Job, workers, dask, pool, progress) -> tuple[list[RecordResult], int]:
     """Every record's result: committed shards reused, the others processed (in workers or on
-    a cluster) and read back from their shards."""
+    a cluster) and read back from their shards; and how many were reused."""
     found, n = job.found, len(job.found)
     results: list = [None] * n
     todo, done = [], 0
@@ -153,7 +156,7 @@ def _process(job: _Job, workers, dask, pool, progress) -> list[RecordResult]:
         results[i] = res
         if progress:
             progress(res, done, n)
-    return results
+    return results, n - len(todo)
 
 
 def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
