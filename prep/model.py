@@ -12,6 +12,10 @@ import numpy as np
 
 #: Beat symbols that mark a QRS in WFDB annotations (PhysioNet annotation codes).
 BEAT_SYMBOLS = frozenset("NLRBAaJSVrFejnE/fQ?")
+#: WFDB annotation codes that mark no beat (rhythm, noise, signal quality, waves, comments;
+#: PhysioNet's annotation code table, from memory)
+NON_BEAT_SYMBOLS = frozenset(["+", "~", "|", "x", '"', "[", "]", "!", "p", "t", "u", "(", ")",
+                              "^", "`", "'", "s", "T", "*", "D", "=", "@", "N/A"])
 
 
 @dataclass

@@ -119,6 +119,11 @@ class Config:
         except FileNotFoundError:
             raise ConfigError(f"config file {path} does not exist; write one with "
                               f"'beatmill config > {path.name}'") from None
+        except IsADirectoryError:
+            raise ConfigError(f"config file {path} is a folder; give the TOML file inside it "
+                              "(write one with 'beatmill config > beatmill.toml')") from None
+        except PermissionError:
+            raise ConfigError(f"config file {path} cannot be read (permission denied)") from None
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
             raise ConfigError(f"config file {path} is not valid TOML ({exc}); compare with "
                               "'beatmill config'") from None

@@ -2,10 +2,13 @@
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import numpy as np
 
+from prep.dataset.folder import finish_swap
+from prep.errors import BeatmillError
 from prep.io._files import sha256_file
 from prep.schema import (BEAT_COLUMNS, BEATS_NPY, BEATS_TABLE, LEAD_MASK_NPY, MANIFEST,
                          NORM_CENTER_NPY, NORM_SCALE_NPY, RECORDS_TABLE, TABLE_FILES, TENSOR_FILES)
@@ -17,6 +20,10 @@ def check_dataset(run_dir: str | Path) -> list[str]:
 
     d = Path(run_dir)
     problems: list[str] = []
+    try:
+        finish_swap(d)  # a run killed while moving the dataset in: complete it first
+    except BeatmillError as exc:
+        return [str(exc)]
     mpath = d / MANIFEST
     if not mpath.exists():
         return [f"{mpath}: missing; is {d} a beatmill dataset folder?"]
@@ -24,6 +31,9 @@ def check_dataset(run_dir: str | Path) -> list[str]:
         manifest = json.loads(mpath.read_text(encoding="utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         return [f"{mpath}: not valid JSON ({exc})"]
+    except PermissionError:
+        return [f"{mpath}: cannot be read (permission denied); ask the dataset's owner for read "
+                "access (files written before beatmill 0.1 may be private to their writer)"]
     files = manifest.get("files", {})
     for f in TENSOR_FILES + TABLE_FILES:
         p = d / f
@@ -31,6 +41,9 @@ def check_dataset(run_dir: str | Path) -> list[str]:
             problems.append(f"{p}: missing")
         elif f not in files:
             problems.append(f"{p}: not listed in the manifest")
+        elif not os.access(p, os.R_OK):
+            problems.append(f"{p}: cannot be read (permission denied); ask the dataset's owner "
+                            "for read access")
         elif sha256_file(p) != files[f]:
             problems.append(f"{p}: SHA-256 differs from the manifest (file changed or corrupted)")
     if problems:

@@ -11,7 +11,17 @@ log = logging.getLogger("prep")
 
 
 def n_workers(workers: int | None) -> int:
-    return max(1, workers or int(os.environ.get("BEATMILL_WORKERS", 0) or 0) or os.cpu_count() or 1)
+    """Worker processes: ``workers``, else ``$BEATMILL_WORKERS``, else every core."""
+    env = os.environ.get("BEATMILL_WORKERS", "").strip()
+    if not workers and env:
+        try:
+            workers = int(env)
+        except ValueError:
+            raise ConfigError(f"BEATMILL_WORKERS={env!r} is not a whole number of worker "
+                              "processes; set it to e.g. 2 or unset it") from None
+        if workers < 1:
+            raise ConfigError(f"BEATMILL_WORKERS={env!r}: at least 1 worker is needed")
+    return max(1, workers or os.cpu_count() or 1)
 
 
 def _warm() -> None:

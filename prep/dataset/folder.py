@@ -7,22 +7,86 @@ import os
 import shutil
 from pathlib import Path
 
-from prep.errors import ConfigError
+from prep.errors import BeatmillError, ConfigError
 from prep.schema import MANIFEST, REPORT, TABLE_FILES, TENSOR_FILES
 
 log = logging.getLogger("prep")
 
 
+JOURNAL = ".swap.json"  # names the staged files while they are moved in; removed last
+
+
 def swap_in(staging: Path, out: Path) -> None:
-    """Move the staged files into ``out``; the manifest, which vouches for the others, last.
-    A failure while writing (no space, no permission) happens in the staging folder, before
-    anything in ``out`` is touched. A report of another dataset (``report.html``) goes: it
-    would describe records this dataset does not hold."""
+    """Move the staged files into ``out``, all or nothing for a reader at any instant.
+
+    A journal naming the staged files is written (atomically) first, the files are moved, the
+    manifest last, and the journal goes. A run killed in between leaves the journal: the next
+    run, ``open_dataset``, ``check`` and ``report`` complete the move before reading
+    (:func:`finish_swap`), so none of them sees half an old and half a new dataset. A failure
+    while writing (no space, no permission) happens in the staging folder, before anything in
+    ``out`` is touched. A report of another dataset (``report.html``) goes: it would describe
+    records this dataset does not hold."""
     old = _read_bytes(out / MANIFEST)
-    for name in TENSOR_FILES + TABLE_FILES + (MANIFEST,):
-        os.replace(staging / name, out / name)
+    tmp = out / (JOURNAL + ".part")
+    tmp.write_text(json.dumps({"staging": staging.name,
+                               "files": list(TENSOR_FILES + TABLE_FILES + (MANIFEST,))}))
+    os.replace(tmp, out / JOURNAL)
+    finish_swap(out)
     if old is not None and old != _read_bytes(out / MANIFEST):
         (out / REPORT).unlink(missing_ok=True)
+
+
+def finish_swap(out: Path) -> bool:
+    """Complete a swap a killed run left half done (its journal is there): move the remaining
+    staged files in, the manifest last; True when there was one. Raises :class:`BeatmillError`
+    when the folder cannot be written (the dataset is then not readable as it stands)."""
+    journal = out / JOURNAL
+    try:
+        info = json.loads(journal.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        return False
+    except (OSError, ValueError) as exc:
+        raise BeatmillError(f"{journal}: unreadable swap journal ({exc}); rerun 'beatmill run' "
+                            "with --overwrite to rewrite the dataset") from None
+    staging = out / str(info.get("staging", ""))
+    try:
+        for name in info.get("files", []):
+            if (staging / name).exists():
+                os.replace(staging / name, out / name)
+        journal.unlink()
+    except PermissionError:
+        raise BeatmillError(f"{out}: a run replacing this dataset was interrupted and the "
+                            "folder cannot be written to finish it; ask its owner to run "
+                            "'beatmill check' on it") from None
+    shutil.rmtree(staging, ignore_errors=True)
+    log.warning("%s: finished replacing the dataset (a run was interrupted while moving it in)",
+                out)
+    return True
+
+
+def clean_stale_staging(out: Path) -> list[str]:
+    """Remove staging folders of runs that are no longer running (killed ones); returns their
+    names. A staging folder is named ``.staging-PID``; one whose process lives is kept."""
+    gone = []
+    for d in out.glob(".staging-*"):
+        try:
+            pid = int(d.name.rsplit("-", 1)[1])
+        except ValueError:
+            continue
+        if pid != os.getpid() and not _alive(pid):
+            shutil.rmtree(d, ignore_errors=True)
+            gone.append(d.name)
+    return gone
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # another user's process
+        return True
+    return True
 
 
 def _read_bytes(path: Path) -> bytes | None:
@@ -41,6 +105,10 @@ def prepare_out(out: Path, overwrite: bool, config_hash: str, records: list[str]
     """
     if out.exists() and not out.is_dir():
         raise ConfigError(f"output {out} exists and is not a folder; choose another --out")
+    if out.is_dir():
+        finish_swap(out)
+        for name in clean_stale_staging(out):
+            log.warning("%s: removed %s, left by a run that was stopped", out, name)
     if out.exists() and any(out.iterdir()):
         before = previous_run(out)
         same_config = before.get("config_sha256") == config_hash

@@ -16,7 +16,7 @@ from prep.config import Config
 from prep.dataset.assemble import Assembled, Provenance, assemble, write_assembled
 from prep.dataset.execute import execute, n_workers, start_pool
 from prep.dataset.export import NpyWriter
-from prep.dataset.folder import prepare_out, swap_in
+from prep.dataset.folder import JOURNAL, prepare_out, swap_in
 from prep.dataset.shards import read_shard, write_shard
 from prep.dataset.split import load_patient_map
 from prep.errors import ConfigError
@@ -176,7 +176,8 @@ def _write(out: Path, results: list[RecordResult], cfg: Config, axis: list[str],
         write_assembled(staging, a)
         swap_in(staging, out)
     finally:
-        shutil.rmtree(staging, ignore_errors=True)
+        if not (out / JOURNAL).exists():  # else the staged files finish the swap next time
+            shutil.rmtree(staging, ignore_errors=True)
     return a
 
 

@@ -9,6 +9,7 @@ import pandas as pd
 
 from prep.config import Config
 from prep.dataset.assemble import Assembled, Provenance, assemble
+from prep.dataset.folder import finish_swap
 from prep.dataset.run import resolve_extras
 from prep.errors import BeatmillError
 from prep.io._files import check_rate
@@ -90,6 +91,8 @@ class Dataset:
 
     def __init__(self, run_dir: str | Path):
         self.path = Path(run_dir)
+        if self.path.is_dir():
+            finish_swap(self.path)  # a run killed while moving the dataset in: complete it
         mpath = self.path / MANIFEST
         if not mpath.exists():
             raise BeatmillError(f"{self.path} is not a beatmill dataset (no manifest.json); write "

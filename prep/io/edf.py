@@ -34,6 +34,10 @@ def _header(path: Path) -> dict:
                               stage="read") from None
         if not 0 < ns < 4096:
             raise RecordError(f"EDF header declares {ns} signals", path=str(path), stage="read")
+        if not dur > 0:
+            raise RecordError(f"EDF header gives data records of {dur:g} s; the duration of a "
+                              "data record must be positive (bytes 244-251 of the header)",
+                              path=str(path), stage="read")
         sh = fh.read(256 * ns)
     def field(offset, width):
         return [sh[offset + i * width: offset + (i + 1) * width].decode("latin-1").strip()

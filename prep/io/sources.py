@@ -102,13 +102,26 @@ def find_sources(items: list[str | Path], *, notes: list[str] | None = None,
     for f in FORMATS.values():
         parts |= f.not_records([b for k, b in bases if k == f.kind])
     bases = [(k, b) for k, b in bases if b not in parts]
+    return [Source(k, b, n) for (k, b), n in zip(bases, _distinct_names(bases, notes))], problems
+
+
+def _distinct_names(bases: list[tuple[str, Path]], notes: list[str]) -> list[str]:
+    """Record names from file names; two inputs never share one. Shared names become the path
+    relative to the common input root; a WFDB record and a file of another format with one base
+    name in one folder keep the other's suffix (``rec`` and ``rec.csv``), with a note."""
     names = [FORMATS[k].record_name(b) for k, b in bases]
     dup = {n for n in names if names.count(n) > 1}
     if dup:
         root = Path(os.path.commonpath([str(b.parent) for _, b in bases]))
         names = [str(b.parent.relative_to(root) / FORMATS[k].record_name(b)) if n in dup else n
                  for (k, b), n in zip(bases, names)]
-    return [Source(k, b, n) for (k, b), n in zip(bases, names)], problems
+    still = {n for n in names if names.count(n) > 1}
+    for n in sorted(still):
+        kinds = [k for (k, _), m in zip(bases, names) if m == n]
+        notes.append(f"{n}: {len(kinds)} inputs share this name ({', '.join(kinds)}); the ones "
+                     "not WFDB keep their file suffix in the record name")
+    return [f"{n}{b.suffix}" if n in still and k != "wfdb" else n
+            for (k, b), n in zip(bases, names)]
 
 
 def _tables_left_out(hits: list[Path], folder: Path, csv_rate: bool, notes: list[str]) -> list[Path]:
@@ -140,8 +153,11 @@ def read_source(src: Source, cfg: ReadConfig, inputs=None, sampfrom: int = 0,
                           sampto=sampto)
     if rec.annotations is None:
         base = src.path if src.kind == "wfdb" else src.path.with_suffix("")
-        rec.annotations = read_annotation_csv(annotation_csv(base), rec.fs, rec.n_samples,
-                                              offset=sampfrom)
+        try:
+            rec.annotations = read_annotation_csv(annotation_csv(base), rec.fs, rec.n_samples,
+                                                  offset=sampfrom)
+        except RecordError as exc:  # the signal is fine: process it unlabelled
+            rec.warnings.append(f"{exc}; the record is processed unlabelled")
     return rec
 
 
@@ -176,7 +192,10 @@ def read_annotation_csv(path: Path, fs: float, n_samples: int,
     if not path.exists():
         return None
     try:
-        df = pd.read_csv(path)
+        df = pd.read_csv(path, encoding_errors="strict")
+    except UnicodeDecodeError:
+        raise RecordError("annotation CSV is not text (binary content or an unknown encoding); "
+                          "write it as UTF-8", path=str(path), stage="read") from None
     except Exception as exc:
         raise RecordError(f"annotation CSV cannot be parsed ({type(exc).__name__}: {exc})",
                           path=str(path), stage="read") from None

@@ -99,6 +99,10 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     except FileNotFoundError as exc:
         raise RecordError(f"a file of the record is missing ({exc.filename or exc}); restore it or "
                           "leave the record out", path=shown, stage="read") from None
+    except PermissionError as exc:
+        raise RecordError(f"a file of the record cannot be read (permission denied: "
+                          f"{exc.filename or exc}); ask its owner for read access", path=shown,
+                          stage="read") from None
     except Exception as exc:  # wfdb raises many types for malformed files
         raise RecordError(f"cannot read the WFDB record ({type(exc).__name__}: {exc}); check the "
                           "header and signal files", path=shown, stage="read") from None
@@ -122,7 +126,8 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
                           path=shown, stage="read")
     data = np.ascontiguousarray(sig[:, keep].T, dtype=np.float64)
     data *= np.array([scale_to_mv(units[i]) for i in keep])[:, None]
-    ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1], offset=sampfrom)
+    ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1], warnings,
+                                 offset=sampfrom)
     inputs = inputs or hashed(record_files(base, cfg))
     bad = ~np.isfinite(data)
     if bad.any():
@@ -153,7 +158,7 @@ def _read_multirate(base: Path, spf: list[int], cfg: ReadConfig, name, shown, wa
                            f"rate {fs0 * top:g} Hz") for i in ecg if spf[i] != top]
     data = np.vstack([np.asarray(rec.e_p_signal[i], dtype=np.float64) * scale_to_mv(units[i])
                       for i in keep])
-    ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1])
+    ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1], warnings)
     if ann is not None:  # WFDB annotation times count frames; the ECG rate is top x frame rate
         ann.sample = ann.sample * top
     return Record(name=name or base.name, fs=fs0 * top, signals=data, warnings=warnings,
@@ -185,6 +190,12 @@ def _check_header(base: Path, shown: str, warnings: list[str],
         raw = hea.read_bytes()
     except FileNotFoundError:
         raise RecordError("header file is missing", path=shown, stage="read") from None
+    except IsADirectoryError:
+        raise RecordError("the header path is a folder, not a file", path=shown,
+                          stage="read") from None
+    except PermissionError:
+        raise RecordError("the header file cannot be read (permission denied); ask its owner "
+                          "for read access", path=shown, stage="read") from None
     if b"\x00" in raw[:4096]:
         raise RecordError("this is not a WFDB header (binary content); point at the .hea text "
                           "file", path=shown, stage="read")
@@ -221,27 +232,12 @@ def _check_header(base: Path, shown: str, warnings: list[str],
     if h.sig_len is not None and h.sig_len > _MAX_SAMPLES:
         raise RecordError(f"the header declares {h.sig_len} samples per signal, which is not "
                           "believable; fix the length field", path=shown, stage="read")
+    _check_shared_files(h, shown)
     if not h.sig_len or not h.file_name:
         return None
-    frames = []
-    for fn in sorted(set(h.file_name)):
-        idx = [i for i, f in enumerate(h.file_name) if f == fn]
-        fmts = [str(h.fmt[i]) for i in idx]
-        if any(f not in _FMT_BYTES for f in fmts):
-            if any(f not in ("508", "516", "524") for f in fmts):
-                raise RecordError(f"signal format {fmts} of {fn} is not a WFDB format this "
-                                  "reader knows", path=shown, stage="read")
-            continue  # FLAC-compressed: size says nothing
-        path = base.parent / fn
-        if not path.exists():
-            raise RecordError(f"signal file {fn} is missing; restore it or leave the record out",
-                              path=shown, stage="read")
-        offset = max([int(h.byte_offset[i] or 0) for i in idx] if h.byte_offset else [0])
-        per_frame = sum(_FMT_BYTES[f] for f in fmts)
-        frames.append(int((path.stat().st_size - offset) // per_frame))
-    if not frames:
+    have = _frames_present(h, base, shown)
+    if have is None:
         return None
-    have = min(frames)
     if have <= 0:
         raise RecordError("the signal file holds no samples (zero-length record)", path=shown,
                           stage="read")
@@ -252,18 +248,61 @@ def _check_header(base: Path, shown: str, warnings: list[str],
     return None
 
 
-def _read_wfdb_annotations(base: Path, ext: str, n_samples: int,
+def _check_shared_files(h, shown: str) -> None:
+    """Signals stored in one file must start at one byte offset (interleaved frames): the
+    reader would otherwise take every other sample of one signal as the other's."""
+    if not h.file_name or not h.byte_offset:
+        return
+    for fn in sorted(set(h.file_name)):
+        offs = {int(h.byte_offset[i] or 0) for i, f in enumerate(h.file_name) if f == fn}
+        if len(offs) > 1:
+            raise RecordError(f"signals stored one after another in {fn} (byte offsets "
+                              f"{sorted(offs)}) cannot be read without mixing their samples; "
+                              "write each signal to its own file (or as interleaved frames)",
+                              path=shown, stage="read")
+
+
+def _frames_present(h, base: Path, shown: str) -> int | None:
+    """Frames the signal files hold (the smallest over files; None when sizes say nothing)."""
+    frames = []
+    for fn in sorted(set(h.file_name)):
+        idx = [i for i, f in enumerate(h.file_name) if f == fn]
+        fmts = [str(h.fmt[i]) for i in idx]
+        if any(f not in _FMT_BYTES for f in fmts):
+            if any(f not in ("508", "516", "524") for f in fmts):
+                raise RecordError(f"signal format {fmts} of {fn} is not a WFDB format this "
+                                  "reader knows", path=shown, stage="read")
+            continue  # FLAC-compressed: size says nothing
+        path = base.parent / fn
+        if not path.is_file():
+            raise RecordError(f"signal file {fn} is missing or not a file; restore it or leave "
+                              "the record out", path=shown, stage="read")
+        offset = max([int(h.byte_offset[i] or 0) for i in idx] if h.byte_offset else [0])
+        per_frame = sum(_FMT_BYTES[f] for f in fmts)
+        frames.append(int((path.stat().st_size - offset) // per_frame))
+    return min(frames) if frames else None
+
+
+def _read_wfdb_annotations(base: Path, ext: str, n_samples: int, warnings: list[str],
                            offset: int = 0) -> Annotations | None:
+    """The record's reference annotations; an empty or damaged annotation file leaves the
+    record unlabelled with a warning naming the file (the signal is still good)."""
     import wfdb
 
     path = Path(str(base) + "." + ext)
     if not path.exists():
         return None
+    if path.stat().st_size == 0:
+        warnings.append(f"annotation file {path.name} is empty; the record is processed "
+                        "unlabelled")
+        return None
     try:
         a = wfdb.rdann(str(base), ext)
     except Exception as exc:
-        raise RecordError(f"annotation file cannot be read ({type(exc).__name__}: {exc}); remove "
-                          "or repair it", path=str(path), stage="read") from None
+        warnings.append(f"annotation file {path.name} cannot be read ({type(exc).__name__}: "
+                        f"{str(exc)[:120]}); the record is processed unlabelled; repair or "
+                        "remove the file")
+        return None
     sample = np.asarray(a.sample, dtype=np.int64) - int(offset)
     symbol = np.asarray(a.symbol, dtype=object)
     aux = np.asarray(a.aux_note if a.aux_note is not None else [""] * len(sample), dtype=object)

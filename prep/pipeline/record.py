@@ -38,7 +38,8 @@ from prep.quality.windows import grade_codes, lead_windows, main_fault
 from prep.schema import empty_beats
 from prep.stages.bandpass import bandpass
 from prep.stages.baseline import remove_baseline
-from prep.stages.labels import attach_labels, beat_classes, class_yield, noise_stretches, rhythm_at
+from prep.stages.labels import (attach_labels, beat_classes, class_yield, noise_stretches,
+                                rhythm_at, unknown_symbols)
 from prep.stages.powerline import remove_powerline
 from prep.stages.resample import cut_and_resample
 from prep.stages.rpeaks import detect_leads, fuse_leads
@@ -132,9 +133,17 @@ def _condition(st: _State) -> None:
     raw, st.gap = fill_gaps(st.rec.signals)
     res.logs.append(StageLog("gaps", counts={"missing_samples": int(st.gap.sum())}))
     st.bad, st.masks, st.fault = lead_faults(raw, fs, cfg.quality, st.gap)
-    st.usable = np.array([f["usable_fraction"] >= cfg.quality.min_usable_fraction
+    # a stretch with no samples is absent data, not a bad lead: the share usable is judged over
+    # the samples recorded (beats in gaps are excluded on their own, reason in_gap)
+    st.usable = np.array([usable_of_recorded(f) >= cfg.quality.min_usable_fraction
                           for f in st.fault])
     st.lead_reason = ["" if u else fault_reason(f) for u, f in zip(st.usable, st.fault)]
+    for j, k in copied_leads(st.rec.signals):  # one signal twice is not two leads' evidence
+        if st.usable[k]:
+            st.usable[k] = False
+            st.lead_reason[k] = f"an exact copy of lead {st.rec.leads[j]}; that one is used"
+            res.warnings.append(f"file {st.rec.path}: lead {st.rec.leads[k]} is an exact copy of "
+                                f"lead {st.rec.leads[j]}; only {st.rec.leads[j]} is used")
     y, lg = remove_powerline(raw, fs, cfg.powerline)
     res.logs.append(lg)
     st.mains, st.notched = lg.derived.get("mains_hz"), y
@@ -142,6 +151,32 @@ def _condition(st: _State) -> None:
     res.logs.append(lg)
     st.y, lg = remove_baseline(y, fs, cfg.baseline)
     res.logs.append(lg)
+
+
+def usable_of_recorded(fault: dict) -> float:
+    """Share of a lead's recorded (not missing) samples that are neither flat nor clipped.
+
+    >>> usable_of_recorded({"usable_fraction": 0.09, "missing_fraction": 0.9})
+    0.9
+    """
+    present = 1.0 - fault["missing_fraction"]
+    return round(fault["usable_fraction"] / present, 12) if present > 0 else 0.0
+
+
+def copied_leads(x: np.ndarray) -> list[tuple[int, int]]:
+    """(j, k) for every lead k that holds exactly the samples of an earlier lead j.
+
+    >>> copied_leads(np.array([[1.0, 2.0], [1.0, 2.0], [1.0, 3.0]]))
+    [(0, 1)]
+    """
+    out, taken = [], set()
+    for k in range(1, x.shape[0]):
+        for j in range(k):
+            if j not in taken and np.array_equal(x[j], x[k], equal_nan=True):
+                out.append((j, k))
+                taken.add(k)
+                break
+    return out
 
 
 def _grade_leads(st: _State) -> None:
@@ -168,7 +203,8 @@ def _grade_leads(st: _State) -> None:
     res.windows = pd.concat(tables, ignore_index=True)
     st.L = int(round(cfg.windows.window_s * fs))
     for j in list(st.dets):
-        share = float((st.grades[j] < 2).mean())
+        recorded = res.windows.missing_fraction[res.windows.lead == rec.leads[j]].to_numpy() < 0.5
+        share = float((st.grades[j][recorded] < 2).mean()) if recorded.any() else 0.0
         if st.dets[j].r.size == 0:
             st.usable[j] = False
             st.lead_reason[j] = "no beats found in this lead"
@@ -217,7 +253,7 @@ def _fuse(st: _State) -> None:
 def _no_usable_lead(st: _State) -> RecordResult:
     res, rec, n_ax = st.res, st.rec, len(st.axis)
     res.status = "no_usable_lead"
-    res.error = "no usable ECG lead: " + "; ".join(
+    res.error = f"file {rec.path}: no usable ECG lead: " + "; ".join(
         f"{rec.leads[j]}: {st.lead_reason[j]}" for j in range(len(rec.leads)))
     res.beats = empty_beats()
     res.tensor = np.zeros((0, n_ax, st.cfg.resample.n_samples))
@@ -372,7 +408,7 @@ def _tabulate(st: _State, mapping: dict[str, str] | None) -> None:
     # between a row and its neighbouring heartbeat, that RR is unknown (NaN), not a guess
     unsure = np.array([any(c in UNCONFIRMED for c in x) for x in st.reasons], bool)
     rr_prev, rr_next = unknown_across(r, r[unsure & ~is_beat], rr_prev, rr_next, fs)
-    labels = _labels(st)
+    labels = _labels(st, mapping)
     res.class_yield = class_yield(r, included, rec.annotations, fs, cfg.labels.window_ms, mapping)
     res.beats = pd.DataFrame({
         "beat_id": [f"{rec.name}:{int(s)}" for s in r], "record": rec.name,
@@ -387,10 +423,18 @@ def _tabulate(st: _State, mapping: dict[str, str] | None) -> None:
         **{k: (np.round(v, 6) if v.dtype.kind == "f" else v) for k, v in st.scores.items()}})
 
 
-def _labels(st: _State) -> np.ndarray:
-    """Reference labels of every row; none (with a warning) when they do not fit the signal."""
+def _labels(st: _State, mapping: dict[str, str] | None) -> np.ndarray:
+    """Reference labels of every row; none (with a warning) when they do not fit the signal.
+    Annotation labels no class table knows are named in a warning with their counts."""
     rec, cfg, fused = st.rec, st.cfg, st.fused
-    labels = attach_labels(fused.r, rec.annotations, rec.fs, cfg.labels.window_ms)
+    labels = attach_labels(fused.r, rec.annotations, rec.fs, cfg.labels.window_ms,
+                           extra_symbols=tuple(mapping or {}))
+    unknown = unknown_symbols(rec.annotations, mapping)
+    if unknown:
+        shown = ", ".join(f"{s!r} x{n}" for s, n in sorted(unknown.items(), key=lambda kv: -kv[1])[:8])
+        st.res.warnings.append(f"reference annotations ({rec.annotations.source}) hold labels no "
+                               f"class table knows, left out (their beats are unlabeled): {shown}; "
+                               "name them in labels.mapping_file")
     if rec.annotations is not None and st.ra.size >= 20:
         n_ann = int(np.isin(rec.annotations.symbol, list(BEAT_SYMBOLS)).sum())
         hit = float((labels[fused.accepted] != "").mean())

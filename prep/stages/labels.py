@@ -4,11 +4,13 @@ from __future__ import annotations
 import numpy as np
 
 from prep.evaluate import match_pairs
-from prep.model import BEAT_SYMBOLS, Annotations
+from prep.model import BEAT_SYMBOLS, NON_BEAT_SYMBOLS, Annotations
 
 
-def attach_labels(r: np.ndarray, ann: Annotations | None, fs: float, window_ms: float) -> np.ndarray:
+def attach_labels(r: np.ndarray, ann: Annotations | None, fs: float, window_ms: float,
+                  extra_symbols=()) -> np.ndarray:
     """Symbol of the nearest beat annotation within ``window_ms`` of each R ('' when none).
+    Beat annotations: the WFDB beat codes and ``extra_symbols`` (a mapping file's symbols).
 
     >>> from prep.model import Annotations
     >>> a = Annotations(np.array([100, 400]), np.array(["N", "V"], dtype=object))
@@ -18,7 +20,8 @@ def attach_labels(r: np.ndarray, ann: Annotations | None, fs: float, window_ms: 
     out = np.full(r.size, "", dtype=object)
     if ann is None or r.size == 0:
         return out
-    is_beat = np.array([s in BEAT_SYMBOLS for s in ann.symbol], bool)
+    beats = BEAT_SYMBOLS | set(extra_symbols)
+    is_beat = np.array([s in beats for s in ann.symbol], bool)
     samp, sym = ann.sample[is_beat], ann.symbol[is_beat]
     if samp.size == 0:
         return out
@@ -68,6 +71,21 @@ def load_mapping(path: str | None) -> dict[str, str]:
     if bad:
         raise ConfigError(f"[labels] mapping_file {p}: empty symbol or class for {bad}")
     return {str(k): str(v) for k, v in table.items()}
+
+
+def unknown_symbols(ann: Annotations | None, mapping: dict[str, str] | None = None) -> dict:
+    """Annotation symbols that are neither a WFDB code nor in the mapping, with their counts
+    (such labels mark no beat here: a class table must name them).
+
+    >>> from prep.model import Annotations
+    >>> unknown_symbols(Annotations(np.array([1, 2, 3]), np.array(["N", "Normal", "+"], object)))
+    {'Normal': 1}
+    """
+    if ann is None or ann.symbol.size == 0:
+        return {}
+    known = BEAT_SYMBOLS | NON_BEAT_SYMBOLS | set(mapping or {})
+    sym, n = np.unique(np.asarray([str(s) for s in ann.symbol], dtype=object), return_counts=True)
+    return {str(s): int(c) for s, c in zip(sym, n) if s not in known}
 
 
 def beat_classes(labels: np.ndarray, mapping: dict[str, str] | None = None) -> np.ndarray:
