@@ -150,3 +150,25 @@ def test_help_shows_names_not_python_types():
 def test_a_require_rule_resolves_lead_aliases():
     from prep.report.survey import parse_rule
     assert parse_rule("MLII:usable>=0.9") == ("II", "usable", ">=", 0.9)
+
+
+@pytest.mark.parametrize("args", [["--help"], ["reasons"], ["config"], ["check", "{out}"],
+                                  ["why", "{out}", "night01:150"]])
+def test_light_commands_never_load_the_signal_stack(args, demo_run):
+    # common practice, no source: a command that detects no beat should not pay for the
+    # detector libraries' import (neurokit2 alone takes 1-3 s)
+    import subprocess
+    import sys
+    out, _ = demo_run
+    argv = [a.replace("{out}", str(out)) for a in args]
+    code = ("import runpy, sys, contextlib, io\n"
+            f"sys.argv = ['beatmill'] + {argv!r}\n"
+            "try:\n"
+            "    with contextlib.redirect_stdout(io.StringIO()):\n"
+            "        runpy.run_module('prep.cli.main', run_name='__main__')\n"
+            "except SystemExit:\n"
+            "    pass\n"
+            "print(sorted(m for m in ('neurokit2', 'scipy.signal', 'prep.pipeline.record') "
+            "if m in sys.modules))\n")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert r.stdout.strip().splitlines()[-1] == "[]", (args, r.stdout, r.stderr)

@@ -32,9 +32,13 @@ def test_report_is_self_contained_and_complete(report):
     assert not re.search(r'(src|href)="(https?:)?//', text)        # no network needed
     imgs = re.findall(r'<img src="([^"]+)"', text)
     assert imgs and all(s.startswith("data:image/png;base64,") for s in imgs)
-    for section in ("Counts", "Signal quality over time", "Kept beats per class",
-                    "Excluded beats in context", "Rhythm", "Provenance"):
+    for section in ("Counts", "Records", "Signal quality over time", "Kept beats per class",
+                    "Scores that decide exclusions", "Excluded beats in context", "Rhythm"):
         assert f"<h2>{section}</h2>" in text
+    assert "<h2>Provenance</h2><details>" in text                  # collapsed by default
+    assert 'class="dataframe sortable"' in text and "<script>" in text
+    assert "holds no abnormal beat" in text                        # the run's split warnings
+    assert "[bandpass]" in text and "low_hz = " in text             # the configuration as TOML
     t = pd.read_parquet(run / "beats.parquet")
     some = t[t.reasons.str.contains("high_freq_noise")].beat_id.iloc[0]
     assert some in text                                            # ready for 'beatmill why'
@@ -59,3 +63,34 @@ def test_report_renders_in_a_headless_browser(report, tmp_path):
     img = mpimg.imread(shot)
     assert img.shape[0] >= 1000 and img.shape[1] >= 1200
     assert float(np.std(img[..., :3])) > 0.05                     # not a blank page
+
+
+def test_report_of_a_collection_stays_small_and_renders(tmp_path):
+    # 150 short records (20 s slices of a demo record): the page must summarize, not grow
+    # record by record (size bound: design choice, no source)
+    import wfdb
+
+    from prep.dataset.run import run
+    from prep.report.html import write_report
+
+    from .conftest import DEMO
+    r = wfdb.rdrecord(str(DEMO / "night01"))
+    d = tmp_path / "recs"
+    d.mkdir()
+    n = int(20 * r.fs)
+    for k in range(150):
+        lo = (k * 997) % (r.p_signal.shape[0] - n)
+        wfdb.wrsamp(f"s{k:03d}", fs=r.fs, units=["mV"] * 2, sig_name=["II", "V5"],
+                    p_signal=r.p_signal[lo:lo + n], fmt=["16"] * 2, write_dir=str(d))
+    run([d], tmp_path / "ds")
+    page = write_report(tmp_path / "ds")
+    size = page.stat().st_size
+    assert size < 4_000_000, size
+    text = page.read_text()
+    assert "record-leads with the largest share" in text or text.count("<img") < 12
+    chromium = shutil.which("chromium") or shutil.which("chromium-browser")
+    if chromium:
+        dom = subprocess.run([chromium, *CHROMIUM_FLAGS, f"--user-data-dir={tmp_path / 'p'}",
+                              "--dump-dom", page.as_uri()], capture_output=True, text=True,
+                             timeout=120)
+        assert "<h1>beatmill dataset report</h1>" in dom.stdout

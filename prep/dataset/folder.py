@@ -31,12 +31,12 @@ def swap_in(staging: Path, out: Path) -> None:
     tmp.write_text(json.dumps({"staging": staging.name,
                                "files": list(TENSOR_FILES + TABLE_FILES + (MANIFEST,))}))
     os.replace(tmp, out / JOURNAL)
-    finish_swap(out)
+    finish_swap(out, interrupted=False)
     if old is not None and old != _read_bytes(out / MANIFEST):
         (out / REPORT).unlink(missing_ok=True)
 
 
-def finish_swap(out: Path) -> bool:
+def finish_swap(out: Path, interrupted: bool = True) -> bool:
     """Complete a swap a killed run left half done (its journal is there): move the remaining
     staged files in, the manifest last; True when there was one. Raises :class:`BeatmillError`
     when the folder cannot be written (the dataset is then not readable as it stands)."""
@@ -59,8 +59,9 @@ def finish_swap(out: Path) -> bool:
                             "folder cannot be written to finish it; ask its owner to run "
                             "'beatmill check' on it") from None
     shutil.rmtree(staging, ignore_errors=True)
-    log.warning("%s: finished replacing the dataset (a run was interrupted while moving it in)",
-                out)
+    if interrupted:
+        log.warning("%s: finished replacing the dataset (a run was interrupted while moving it "
+                    "in)", out)
     return True
 
 

@@ -3,22 +3,24 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
 from prep.config import Config
-from prep.dataset.assemble import Assembled, Provenance, assemble
 from prep.dataset.folder import finish_swap
-from prep.dataset.run import resolve_extras
 from prep.errors import BeatmillError
-from prep.io._files import check_rate
-from prep.leads import canonical_lead, default_axis, resolve_axis
-from prep.model import Annotations, Record
-from prep.pipeline.record import record_result
+from prep.model import Annotations
 from prep.quality.reasons import FLAGS, REASONS, group
 from prep.schema import (BEATS_NPY, LEAD_MASK_NPY, MANIFEST, NORM_CENTER_NPY, NORM_SCALE_NPY,
                          WINDOWS_TABLE)
+
+if TYPE_CHECKING:
+    from prep.dataset.assemble import Assembled
+
+#: columns of datasets written before 0.1's renames, read under their present names
+_OLD_COLUMNS = {"class": "beat_class", "flags": "beat_flags"}
 
 # reason -> (score column, config section, config key) for explanations
 _EVIDENCE = {
@@ -33,7 +35,7 @@ _EVIDENCE = {
 
 
 def process(signals, fs: float, *, leads: list[str] | None = None, config: Config | None = None,
-            name: str = "memory", annotations: Annotations | None = None) -> Assembled:
+            name: str = "memory", annotations: Annotations | None = None) -> "Assembled":
     """Run the whole pipeline on in-memory arrays; nothing touches the disk.
 
     Parameters
@@ -61,6 +63,13 @@ def process(signals, fs: float, *, leads: list[str] | None = None, config: Confi
     >>> out.beats.shape[1:], int(out.table.included.sum()) == out.beats.shape[0]
     ((2, 256), True)
     """
+    # the signal stack loads here, not with the module: open_dataset, why and check stay light
+    from prep.dataset.assemble import Provenance, assemble
+    from prep.dataset.run import resolve_extras
+    from prep.io._files import check_rate
+    from prep.leads import canonical_lead, default_axis, resolve_axis
+    from prep.model import Record
+    from prep.pipeline.record import record_result
     cfg = (config or Config()).validate()
     x = np.asarray(signals, dtype=np.float64)
     if x.ndim == 1:
@@ -106,7 +115,8 @@ class Dataset:
 
     def _table(self, name: str) -> pd.DataFrame:
         if name not in self._tables:
-            self._tables[name] = pd.read_parquet(self.path / f"{name}.parquet")
+            t = pd.read_parquet(self.path / f"{name}.parquet")
+            self._tables[name] = t.rename(columns=_OLD_COLUMNS) if name == "beats" else t
         return self._tables[name]
 
     @property

@@ -41,13 +41,22 @@ def _table(df: pd.DataFrame, caption: str) -> str:
             + "</table>")
 
 
-def _quality_strips(ds) -> str:
+def _quality_strips(ds, top: int = 40) -> str:
+    """Each lead's window grades over time; in a large collection the ``top`` record-leads
+    with the largest share of non-good windows."""
     import matplotlib.pyplot as plt
     w = ds._table("windows") if (ds.path / WINDOWS_TABLE).exists() else pd.DataFrame()
     if w.empty:
         return "<p>No quality windows in this dataset.</p>"
     fs = ds.records.set_index("record")["fs"]
     rows = w[["record", "lead"]].drop_duplicates().to_numpy().tolist()
+    note = ""
+    if len(rows) > top:
+        bad = (w.grade != "good").groupby([w.record, w.lead]).mean()
+        worst = set(bad.sort_values(ascending=False, kind="stable").index[:top])
+        note = (f" The {top} of {len(rows)} record-leads with the largest share of noisy or "
+                "unusable windows are drawn.")
+        rows = [r for r in rows if tuple(r) in worst]
     fig, ax = plt.subplots(figsize=(10, 0.32 * len(rows) + 1.2))
     for k, (rec, lead) in enumerate(rows):
         part = w[(w.record == rec) & (w.lead == lead)]
@@ -66,7 +75,7 @@ def _quality_strips(ds) -> str:
     ax.legend(uniq.values(), uniq.keys(), loc="upper right", fontsize=8, ncol=3)
     ax.set_title("Window grades (10 s windows)")
     return _img(_png(fig), "Quality strip: each lead's window grades over time (blue good, "
-                           "yellow noisy, red unusable)")
+                           "yellow noisy, red unusable)." + note)
 
 
 def _class_means(ds) -> str:
@@ -80,7 +89,8 @@ def _class_means(ds) -> str:
     n_show = min(len(axis), 6)
     fig, axes = plt.subplots(n_show, len(classes), figsize=(2.6 * len(classes) + 1, 1.8 * n_show + 0.6),
                              squeeze=False, sharex=True)
-    x = np.linspace(0, 1, ds.beats.shape[2])
+    x, xlabel = _beat_axis(ds)
+    rng = np.random.default_rng(0)  # the same examples every time
     for ci, c in enumerate(classes):
         idx = kept.loc[kept["beat_class"] == c, "tensor_index"].to_numpy()
         idx = idx[:: max(1, idx.size // 2000)]  # at most ~2000 beats per class
@@ -91,14 +101,125 @@ def _class_means(ds) -> str:
                 b = np.asarray(ds.beats[idx[ok], j], dtype=np.float64)
                 m, s = b.mean(0), b.std(0)
                 ax.fill_between(x, m - s, m + s, color=TOL[0], alpha=0.3, lw=0)
-                ax.plot(x, m, color=TOL[0], lw=1.2)
+                for k in rng.choice(len(b), size=min(5, len(b)), replace=False):
+                    ax.plot(x, b[k], color=TOL[1], lw=0.5, alpha=0.8)
+                ax.plot(x, m, color=TOL[0], lw=1.4)
             ax.set_title(f"{c} ({idx.size}) {axis[j]}", fontsize=8)
             if ci == 0:
                 ax.set_ylabel("normalized (a.u.)", fontsize=7)
             if j == n_show - 1:
-                ax.set_xlabel("beat window (fraction)", fontsize=7)
-    fig.suptitle("Mean (line) and +-1 SD (band) of kept beats per class and lead")
+                ax.set_xlabel(xlabel, fontsize=7)
+    fig.suptitle("Kept beats per class and lead: mean (dark line), +-1 SD (band), five beats "
+                 "drawn at random (seed 0, thin lines)")
     return _img(_png(fig), "Kept beats per class and lead: mean and spread")
+
+
+def _beat_axis(ds) -> tuple[np.ndarray, str]:
+    """The x axis of a beat: ms from R in the fixed-window mode, else fraction of the window."""
+    seg = ds.manifest["config"]["segment"]
+    n = ds.beats.shape[2]
+    if seg.get("mode") == "fixed":
+        return np.linspace(-seg["before_ms"], seg["after_ms"], n), "ms from R"
+    return np.linspace(0, 1, n), "beat window (fraction; RR-relative windows)"
+
+
+def _record_table(ds, top: int = 200) -> str:
+    """One sortable row per record (the worst kept shares first; large collections: the
+    worst ``top``)."""
+    t, recs, leads = ds.table, ds.records, ds.leads
+    reasons = t.loc[~t.included, ["record", "reasons"]]
+    top_reason = (reasons.assign(r=reasons.reasons.str.split(";")).explode("r")
+                  .groupby("record")["r"].agg(lambda v: ", ".join(v.value_counts().index[:2]))
+                  if len(reasons) else pd.Series(dtype=str))
+    used = leads[leads.used.astype(bool)].groupby("record")["lead"].agg(", ".join) \
+        if len(leads) else pd.Series(dtype=str)
+    df = pd.DataFrame({"record": recs.record, "status": recs.status,
+                       "fs (Hz)": recs.fs.round(1), "minutes": (recs.duration_s / 60).round(1),
+                       "leads used": recs.record.map(used).fillna("-"),
+                       "beats": recs.n_beats, "kept": recs.n_kept,
+                       "kept %": (100 * recs.n_kept / recs.n_beats.where(recs.n_beats > 0))
+                       .round(1),
+                       "top reasons": recs.record.map(top_reason).fillna("")})
+    df = df.sort_values(["kept %", "record"], na_position="first")
+    note = "" if len(df) <= top else f" (the {top} with the lowest kept share of {len(df)})"
+    return _sortable(df.head(top), f"Records{note}; click a column to sort")
+
+
+def _reason_matrix(ds, top: int = 30) -> str:
+    """Excluded beats per reason and record, the records with the most exclusions first."""
+    t = ds.table
+    ex = t.loc[~t.included, ["record", "reasons"]]
+    if ex.empty:
+        return "<p>No beat was excluded.</p>"
+    long = ex.assign(reason=ex.reasons.str.split(";")).explode("reason")
+    m = pd.crosstab(long.record, long.reason)
+    n_with = len(m)
+    m = m.loc[m.sum(axis=1).sort_values(ascending=False).index[:top]]
+    m = m[m.sum().sort_values(ascending=False).index]
+    m.columns.name = None
+    note = (f", the {len(m)} records with exclusions, most first" if len(m) == n_with else
+            f", the {len(m)} of {n_with} records with exclusions that have the most")
+    return _sortable(m.reset_index(), "Excluded beats per record and reason" + note +
+                     "; a beat with several reasons counts under each")
+
+
+def _sortable(df: pd.DataFrame, caption: str) -> str:
+    body = df.to_html(index=False, border=0, na_rep="-", classes="sortable", escape=True)
+    return f"<p class='cap'>{html.escape(caption)}</p>{body}"
+
+
+_SORT_JS = """<script>
+document.querySelectorAll('table.sortable th').forEach(function (th) {
+  th.style.cursor = 'pointer';
+  th.addEventListener('click', function () {
+    var table = th.closest('table'), body = table.tBodies[0];
+    var i = Array.prototype.indexOf.call(th.parentNode.children, th);
+    var asc = th.dataset.asc !== '1'; th.dataset.asc = asc ? '1' : '0';
+    var rows = Array.prototype.slice.call(body.rows);
+    rows.sort(function (a, b) {
+      var x = a.cells[i].textContent, y = b.cells[i].textContent;
+      var nx = parseFloat(x), ny = parseFloat(y);
+      var c = (!isNaN(nx) && !isNaN(ny)) ? nx - ny : x.localeCompare(y);
+      return asc ? c : -c;
+    });
+    rows.forEach(function (r) { body.appendChild(r); });
+  });
+});
+</script>"""
+
+
+#: score column, its threshold in the configuration, the side a beat is excluded on
+_DECIDING = [("hf_ratio", ("quality", "max_hf_ratio"), "above", "high_freq_noise"),
+             ("template_corr", ("quality", "exclude_template_corr"), "below",
+              "unlike_neighbours"),
+             ("qrs_match", ("quality", "noise_min_qrs_match"), "below", "unmatched_in_noise"),
+             ("amplitude_z", ("quality", "max_amplitude_z"), "above", "amplitude_outlier")]
+
+
+def _score_histograms(ds) -> str:
+    """Each deciding beat score as a histogram with its threshold and the share excluded by
+    the rule that reads it."""
+    import matplotlib.pyplot as plt
+    t, cfg = ds.table, ds.manifest["config"]
+    shown = [d for d in _DECIDING if d[0] in t and t[d[0]].notna().any()]
+    if not shown:
+        return "<p>No beat scores.</p>"
+    fig, axes = plt.subplots(1, len(shown), figsize=(3.6 * len(shown), 3.0), squeeze=False)
+    for ax, (col, (sec, key), side, code) in zip(axes[0], shown):
+        v = t[col].dropna().to_numpy(dtype=float)
+        thr = cfg[sec][key]
+        lo, hi = np.percentile(v, [0.5, 99.5]) if v.size else (0, 1)
+        lo, hi = min(lo, thr), max(hi, thr)
+        ax.hist(np.clip(v, lo, hi), bins=60, color=TOL[0])
+        ax.axvline(thr, color=TOL[2], lw=1.5)
+        share = float(t.reasons.str.contains(code).mean()) if len(t) else 0.0
+        ax.set_title(f"{code}: {share:.2%} of rows\nexcluded {side} {key} = {thr:g}",
+                     fontsize=7)
+        ax.set_xlabel(col, fontsize=7)
+        ax.set_ylabel("beats (count)", fontsize=7)
+        ax.set_yscale("log")
+    fig.tight_layout()
+    return _img(_png(fig), "Deciding beat scores with their thresholds (vertical line)")
 
 
 def _excluded_examples(ds, per_reason: int = 2) -> str:
@@ -149,14 +270,20 @@ def _rhythm(ds) -> str:
     if kept.empty:
         return "<p>No RR intervals.</p>"
     fig, (a1, a2) = plt.subplots(1, 2, figsize=(11, 3.2))
-    for k, (rec, g) in enumerate(kept.groupby("record")):
-        a1.plot(g.r_time_s / 60, (60 / g.rr_prev_s).rolling(10, min_periods=1).median(),
-                lw=0.9, color=TOL[k % 6], label=str(rec))
-    a1.set_xlabel("time in record (min)")
-    a1.set_ylabel("heart rate (bpm, median of 10 beats)")
-    a1.set_title("Heart-rate trend per record")
-    if kept.record.nunique() <= 12:
+    if kept.record.nunique() <= 6:  # one distinct colour per record, with a legend
+        for k, (rec, g) in enumerate(kept.groupby("record")):
+            a1.plot(g.r_time_s / 60, (60 / g.rr_prev_s).rolling(10, min_periods=1).median(),
+                    lw=0.9, color=TOL[k], label=str(rec))
+        a1.set_xlabel("time in record (min)")
+        a1.set_ylabel("heart rate (bpm, median of 10 beats)")
+        a1.set_title("Heart-rate trend per record")
         a1.legend(fontsize=7, ncol=2)
+    else:  # a collection: one number per record, no colours to tell apart
+        med = 60 / kept.groupby("record").rr_prev_s.median()
+        a1.hist(med.clip(20, 250), bins=40, color=TOL[0])
+        a1.set_xlabel("median heart rate of the record (bpm)")
+        a1.set_ylabel("records (count)")
+        a1.set_title(f"Median heart rate per record ({len(med)} records)")
     a2.hist(kept.rr_prev_s.clip(0, 3), bins=80, color=TOL[0])
     a2.set_xlabel("RR interval (s)")
     a2.set_ylabel("kept beats (count)")
@@ -172,7 +299,7 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     t, leads, recs, m = ds.table, ds.leads, ds.records, ds.manifest
     parts = [f"<h1>beatmill dataset report</h1><p class='sub'>{html.escape(str(ds.path))} &middot; "
              f"beatmill {html.escape(m['tool']['version'])} &middot; config "
-             f"{html.escape(m['config_sha256'][:16])}</p>",
+             f"{html.escape(m['config_sha256'][:_HASH])}</p>",
              "<p class='caution'>Research use only: not a medical device, not for diagnosis. "
              "Quality decisions are heuristics; have qualified clinical staff review data that "
              "informs clinical research.</p>"]
@@ -193,11 +320,8 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
                                       "meaning": [FLAGS.get(f, "") for f in fl.index]})
                         if len(fl) else pd.DataFrame([{"flag": "-", "kept beats": 0}]),
                         "Warnings on kept beats"))
-    cls = pd.crosstab(t["split"].replace("", "-"), t["beat_class"], values=t["included"],
-                      aggfunc="sum").fillna(0).astype(int)
-    cls.columns.name = None
-    cls = cls.reset_index()
-    parts.append(_table(cls, "Kept beats per split and class"))
+    parts.append(_split_balance(m))
+    parts += [f"<p class='caution'>{html.escape(w)}</p>" for w in m.get("warnings", [])]
     cy = m.get("class_yield") or {}
     if cy.get("by_class"):
         rows = [{"class": k, "reference beats": v["reference"],
@@ -212,25 +336,33 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     parts.append(_table(pat, "Beats per patient"))
     lt = leads[["record", "lead", "used", "reason"] +
                [c for c in ("usable_share", "main_fault") if c in leads]].copy()
-    parts.append(_table(lt, "Leads used and rejected"))
+    lt["used"] = lt["used"].map({True: "yes", False: "no"})
+    parts.append("<h2>Records</h2>" + _record_table(ds) + _reason_matrix(ds))
+    parts.append("<details><summary>Leads used and rejected</summary>" +
+                 _table(lt, "Leads used and rejected") + "</details>")
     bad = recs[recs.status != "ok"][["record", "status", "error"]]
     if len(bad):
         parts.append(_table(bad, "Records not used"))
     parts += ["<h2>Signal quality over time</h2>", _quality_strips(ds),
               "<h2>Kept beats per class</h2>", _class_means(ds),
+              "<h2>Scores that decide exclusions</h2>", _score_histograms(ds),
               "<h2>Excluded beats in context</h2>", _excluded_examples(ds),
               "<h2>Rhythm</h2>", _rhythm(ds)]
     inputs = [{"record": r, "file": x["file"], "sha256": x["sha256"]}
               for r, xs in zip(recs.record, recs.inputs) for x in xs]
     env = m.get("environment", {})
-    parts += ["<h2>Provenance</h2>",
+    parts += ["<h2>Provenance</h2><details><summary>Run, input files and configuration"
+              "</summary>",
               _table(pd.DataFrame([{"tool": f"beatmill {m['tool']['version']}",
-                                    "config sha256": m["config_sha256"],
+                                    "config sha256": m["config_sha256"][:_HASH],
                                     "lead axis": ", ".join(m["lead_axis"]),
                                     "tensor": " x ".join(map(str, m["tensor"]["shape"])),
                                     "python": env.get("python", "")}]), "Run"),
-              _table(pd.DataFrame(inputs or [{"record": "-"}]), "Input files and checksums"),
-              "<details><summary>Configuration</summary><pre>" +
+              _table(pd.DataFrame(inputs[:500] or [{"record": "-"}]),
+                     "Input files and checksums" + (f" (the first 500 of {len(inputs)}; all in "
+                                                    "records.parquet)" if len(inputs) > 500
+                                                    else "")),
+              "<p class='cap'>Configuration (TOML; 'beatmill config --check' reads it)</p><pre>" +
               html.escape(_config_text(m["config"])) + "</pre></details>"]
     page = f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><title>beatmill report: {html.escape(ds.path.name)}</title>
@@ -244,8 +376,10 @@ caption {{ text-align: left; font-weight: 600; padding-bottom: 0.3rem; }}
 th, td {{ border-bottom: 1px solid #ddd; padding: 0.2rem 0.6rem; text-align: left; }}
 th {{ background: #f2f4f7; }} img {{ max-width: 100%; }} figure {{ margin: 1rem 0; }}
 figcaption {{ font-size: 0.8rem; color: #555; }} pre {{ font-size: 0.75rem; }}
+.cap {{ font-weight: 600; margin-bottom: 0.2rem; }} table.sortable th {{ user-select: none; }}
 </style></head><body>
 {''.join(parts)}
+{_SORT_JS}
 </body></html>
 """
     out = Path(out) if out else ds.path / REPORT
@@ -254,9 +388,31 @@ figcaption {{ font-size: 0.8rem; color: #555; }} pre {{ font-size: 0.75rem; }}
 
 
 def _config_text(cfg: dict) -> str:
-    lines = []
-    for sec, vals in cfg.items():
-        lines.append(f"[{sec}]")
-        lines += [f"{k} = {v!r}" for k, v in vals.items()]
-        lines.append("")
-    return "\n".join(lines)
+    """The configuration as TOML, as 'beatmill config' writes it."""
+    from prep.config import Config
+    try:
+        return Config.from_dict(cfg).to_toml(comments=False)
+    except Exception:  # a dataset of another version: the keys as they are
+        return "\n".join(f"[{sec}]\n" + "\n".join(f"{k} = {v!r}" for k, v in vals.items())
+                         for sec, vals in cfg.items())
+
+
+_HASH = 16  # hex digits of a SHA-256 shown in the report
+
+
+def _split_balance(m: dict) -> str:
+    """Kept beats per split and class, with each split's share of the class."""
+    sp = m.get("splits") or {}
+    classes = sorted({c for v in sp.values() for c in v["classes"]})
+    total = {c: sum(v["classes"].get(c, 0) for v in sp.values()) for c in classes}
+    beats = sum(v["beats"] for v in sp.values())
+    rows = []
+    for name in ("train", "val", "test"):
+        v = sp.get(name, {"beats": 0, "patients": [], "classes": {}})
+        row = {"split": name, "patients": len(v["patients"]),
+               "beats": f"{v['beats']} ({v['beats'] / beats:.0%})" if beats else "0"}
+        for c in classes:
+            k = v["classes"].get(c, 0)
+            row[c] = f"{k} ({k / total[c]:.0%})" if total[c] else "0"
+        rows.append(row)
+    return _table(pd.DataFrame(rows), "Kept beats per split and class (share of the class)")
