@@ -197,10 +197,11 @@ def _grade_leads(st: _State) -> None:
         st.grades[j] = grade_codes(w["grade"])
         st.rhythm[j] = (w["rhythm_findings"] != "").to_numpy()
         st.one_shape[j] = (w["tsqi_average"].fillna(-1) >= cfg.windows.tsqi_noisy).to_numpy()
-        w.insert(0, "lead", rec.leads[j])
-        w.insert(0, "record", rec.name)
         tables.append(w)
     res.windows = pd.concat(tables, ignore_index=True)
+    res.windows.insert(0, "lead", np.repeat(np.array(rec.leads, dtype=object),
+                                            [len(w) for w in tables]))
+    res.windows.insert(0, "record", rec.name)
     st.L = int(round(cfg.windows.window_s * fs))
     for j in list(st.dets):
         recorded = res.windows.missing_fraction[res.windows.lead == rec.leads[j]].to_numpy() < 0.5

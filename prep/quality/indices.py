@@ -15,7 +15,6 @@ from functools import cached_property
 from typing import Callable
 
 import numpy as np
-import pandas as pd
 
 _TSQI_K = 3            # a beat must resemble this many other beats of its lead (as qrs_match)
 _TSQI_LIBRARY = 1000   # at most this many beats of the lead, evenly spread, are compared
@@ -162,13 +161,14 @@ def rhythm(w: Frames) -> dict[str, np.ndarray]:
     counted in the window of its second beat (rhythm measures: reported, never graded)."""
     rr = np.diff(w.ours) / w.fs
     wr = w.window_of_ours[1:] if w.ours.size > 1 else np.zeros(0, np.int64)
-    g = pd.Series(rr).groupby(wr)
     hr, mx, ratio = (np.full(w.n_win, np.nan) for _ in range(3))
-    if rr.size:
-        med, big, small = g.median(), g.max(), g.min()
-        hr[med.index] = 60.0 / med.to_numpy()
-        mx[big.index] = big.to_numpy()
-        ratio[big.index] = big.to_numpy() / np.maximum(small.to_numpy(), 1e-9)
+    if rr.size:  # RRs come in window order: each window's RRs are one slice
+        win, first = np.unique(wr, return_index=True)
+        med = np.array([np.median(v) for v in np.split(rr, first[1:])])
+        big, small = np.maximum.reduceat(rr, first), np.minimum.reduceat(rr, first)
+        hr[win] = 60.0 / med
+        mx[win] = big
+        ratio[win] = big / np.maximum(small, 1e-9)
     return {"hr_bpm": hr, "max_rr_s": mx, "rr_ratio": ratio}
 
 
@@ -188,38 +188,43 @@ INDICES: tuple[Callable[[Frames], dict[str, np.ndarray]], ...] = (
 
 @dataclass(frozen=True)
 class Test:
-    """One window test: ``fails(windows, cfg)`` is True where the window fails it."""
+    """One window test: ``fails(indices, cfg)`` is True where the window fails it
+    (``indices``: column name -> one value per window; NaN fails no comparison)."""
 
     name: str      # the index it reads, as written in decided_by / rhythm_findings
     level: str     # "unusable" or "noisy" (noise tests); "rhythm" for findings
-    fails: Callable[[pd.DataFrame, object], pd.Series]
+    fails: Callable[[dict, object], np.ndarray]
 
 
 def _outside(col: str, key: str):
     return lambda d, c: (d[col] < getattr(c, key)[0]) | (d[col] > getattr(c, key)[1])
 
 
+def _nan(v: np.ndarray, fill: float) -> np.ndarray:
+    return np.where(np.isnan(v), fill, v)
+
+
 #: noise tests, in the order they are named in decided_by (unusable ones decide first)
 NOISE_TESTS = (
-    Test("fault_fraction", "unusable", lambda d, c: d.fault_fraction > c.unusable_fault_fraction),
+    Test("fault_fraction", "unusable", lambda d, c: d["fault_fraction"] > c.unusable_fault_fraction),
     Test("amplitude_mv", "unusable", _outside("amplitude_mv", "amplitude_range_mv")),
-    Test("bsqi", "unusable", lambda d, c: d.bsqi.fillna(0) < c.bsqi_unusable),
-    Test("tsqi", "unusable", lambda d, c: d.tsqi.fillna(-1) < c.tsqi_unusable),
-    Test("fault_fraction", "noisy", lambda d, c: d.fault_fraction > c.noisy_fault_fraction),
-    Test("ksqi", "noisy", lambda d, c: d.ksqi < c.min_ksqi),
+    Test("bsqi", "unusable", lambda d, c: _nan(d["bsqi"], 0) < c.bsqi_unusable),
+    Test("tsqi", "unusable", lambda d, c: _nan(d["tsqi"], -1) < c.tsqi_unusable),
+    Test("fault_fraction", "noisy", lambda d, c: d["fault_fraction"] > c.noisy_fault_fraction),
+    Test("ksqi", "noisy", lambda d, c: d["ksqi"] < c.min_ksqi),
     Test("psqi", "noisy", _outside("psqi", "psqi_range")),
-    Test("bassqi", "noisy", lambda d, c: d.bassqi < c.min_bassqi),
-    Test("bsqi", "noisy", lambda d, c: d.bsqi.fillna(0) < c.bsqi_noisy),
-    Test("tsqi", "noisy", lambda d, c: d.tsqi.fillna(-1) < c.tsqi_noisy),
-    Test("line_share", "noisy", lambda d, c: d.line_share > c.max_line_share),
-    Test("hf_share", "noisy", lambda d, c: d.hf_share > c.max_hf_share),
+    Test("bassqi", "noisy", lambda d, c: d["bassqi"] < c.min_bassqi),
+    Test("bsqi", "noisy", lambda d, c: _nan(d["bsqi"], 0) < c.bsqi_noisy),
+    Test("tsqi", "noisy", lambda d, c: _nan(d["tsqi"], -1) < c.tsqi_noisy),
+    Test("line_share", "noisy", lambda d, c: d["line_share"] > c.max_line_share),
+    Test("hf_share", "noisy", lambda d, c: d["hf_share"] > c.max_hf_share),
 )
 
 #: rhythm findings (column rhythm_findings): reported, never part of the grade
 RHYTHM_TESTS = (
     Test("rate_out_of_range", "rhythm", _outside("hr_bpm", "hr_range_bpm")),
-    Test("long_rr", "rhythm", lambda d, c: d.max_rr_s > c.max_rr_s),
-    Test("irregular_rr", "rhythm", lambda d, c: d.rr_ratio > c.max_rr_ratio),
+    Test("long_rr", "rhythm", lambda d, c: d["max_rr_s"] > c.max_rr_s),
+    Test("irregular_rr", "rhythm", lambda d, c: d["rr_ratio"] > c.max_rr_ratio),
 )
 
 

@@ -5,16 +5,23 @@ are in :class:`prep.config.QualityConfig`; the rules that read them: :mod:`prep.
 """
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 from scipy import signal
 
 from prep.quality.faults import window_fraction
 
 
+@lru_cache(maxsize=64)
+def _highpass(cut: float, fs: float) -> np.ndarray:
+    return signal.butter(4, cut, "highpass", fs=fs, output="sos")
+
+
 def high_freq(x: np.ndarray, fs: float) -> tuple[np.ndarray, float]:
     """The part of ``x`` above min(40 Hz, 0.4 x fs): muscle noise and residual spikes."""
     cut = min(40.0, 0.4 * fs)
-    sos = signal.butter(4, cut, "highpass", fs=fs, output="sos")
+    sos = _highpass(float(cut), float(fs))
     return signal.sosfiltfilt(sos, x, axis=-1, padlen=min(x.shape[-1] - 1, int(fs))), cut
 
 

@@ -63,17 +63,14 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
     fr = Frames(filtered, notched, fs, int(round(cfg.window_s * fs)), ours, other, mains_hz)
     out = {"start": fr.starts, "end": fr.starts + fr.count.astype(np.int64)}
     out.update(fault_shares(bad, fr.starts, fr.count))
+    n = fr.n_win
     if not grade:
-        df = pd.DataFrame(out)
-        for c in INDEX_COLUMNS:
-            if c not in df:
-                df[c] = np.nan
-        return _with_verdicts(df, ["good"] * len(df), [""] * len(df), [""] * len(df))
+        out.update({c: np.full(n, np.nan) for c in INDEX_COLUMNS if c not in out})
+        return _table(out, ["good"] * n, [""] * n, [""] * n)
     for index in INDICES:
         out.update(index(fr))
-    df = pd.DataFrame(out)
-    grades, why = grade_windows(df, cfg)
-    return _with_verdicts(df, grades, why, rhythm_findings(df, cfg))
+    grades, why = grade_windows(out, cfg)
+    return _table(out, grades, why, rhythm_findings(out, cfg))
 
 
 def fault_shares(bad: dict[str, np.ndarray], starts: np.ndarray, count: np.ndarray) -> dict:
@@ -87,20 +84,25 @@ def fault_shares(bad: dict[str, np.ndarray], starts: np.ndarray, count: np.ndarr
     return out
 
 
-def _with_verdicts(df: pd.DataFrame, grades, why, rhythm) -> pd.DataFrame:
-    df.insert(2, "grade", grades)
-    df.insert(3, "decided_by", why)
-    df.insert(4, "rhythm_findings", rhythm)
-    return df
+def _table(out: dict, grades, why, rhythm) -> pd.DataFrame:
+    """The window table: start, end, the verdicts, then the indices (one DataFrame, built once)."""
+    cols = {"start": out["start"], "end": out["end"], "grade": grades, "decided_by": why,
+            "rhythm_findings": rhythm}
+    cols.update((k, v) for k, v in out.items() if k not in ("start", "end"))
+    return pd.DataFrame(cols)
 
 
-def _joined(df: pd.DataFrame, tests, cfg) -> list[str]:
-    hit = np.column_stack([t.fails(df, cfg).to_numpy() for t in tests]) if len(df) else \
-        np.zeros((0, len(tests)), bool)
+def _joined(d, tests, cfg) -> list[str]:
+    """';'-joined names of the tests each window fails (``d``: a window table or a mapping of
+    index name -> array)."""
+    cols = {k: np.asarray(d[k], dtype=float) for k in INDEX_COLUMNS if k in d}
+    n = len(next(iter(cols.values()))) if cols else 0
+    hit = (np.column_stack([np.asarray(t.fails(cols, cfg), bool) for t in tests]) if n
+           else np.zeros((0, len(tests)), bool))
     return [";".join(t.name for t, b in zip(tests, row) if b) for row in hit]
 
 
-def rhythm_findings(df: pd.DataFrame, cfg: WindowsConfig) -> list[str]:
+def rhythm_findings(df, cfg: WindowsConfig) -> list[str]:
     """';'-joined rhythm findings of each window (``''`` when none): reported, never graded.
 
     ``rate_out_of_range``: median heart rate outside ``hr_range_bpm``; ``long_rr``: longest RR
@@ -109,10 +111,11 @@ def rhythm_findings(df: pd.DataFrame, cfg: WindowsConfig) -> list[str]:
     return _joined(df, RHYTHM_TESTS, cfg)
 
 
-def grade_windows(df: pd.DataFrame, cfg: WindowsConfig) -> tuple[list[str], list[str]]:
+def grade_windows(df, cfg: WindowsConfig) -> tuple[list[str], list[str]]:
     """Grade each window from the noise tests of :data:`prep.quality.indices.NOISE_TESTS`;
     returns grades and the ';'-joined deciding tests (the unusable ones where any fails).
-    Rhythm measures take no part (see :func:`rhythm_findings`)."""
+    Rhythm measures take no part (see :func:`rhythm_findings`). ``df``: a window table or a
+    mapping of index name -> array."""
     unusable = _joined(df, [t for t in NOISE_TESTS if t.level == "unusable"], cfg)
     noisy = _joined(df, [t for t in NOISE_TESTS if t.level == "noisy"], cfg)
     grades = ["unusable" if u else "noisy" if n else "good" for u, n in zip(unusable, noisy)]

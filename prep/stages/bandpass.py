@@ -13,7 +13,7 @@ from scipy import signal
 from prep.config import BandpassConfig
 from prep.model import StageLog
 from prep.stages._checks import as_signal
-from prep.stages._design import warped_corner
+from prep.stages._design import butter_sos, warped_corner
 
 
 @dataclass(frozen=True)
@@ -60,8 +60,8 @@ def design_bandpass(fs: float, low_hz: float, high_hz: float, order: int = 2) ->
         raise ValueError(f"band-pass edges must satisfy low_hz < high_hz < Nyquist (fs={fs:g}); "
                          f"got low_hz={low_hz:g}, high_hz={high_hz:g}")
     hp, lp = warped_corner(low_hz, fs, order, up=True), warped_corner(high_hz, fs, order, up=False)
-    sos = np.concatenate([signal.butter(order, hp, "highpass", fs=fs, output="sos"),
-                          signal.butter(order, lp, "lowpass", fs=fs, output="sos")])
+    sos = np.concatenate([butter_sos(order, hp, "highpass", fs),
+                          butter_sos(order, lp, "lowpass", fs)])
     return BandpassDesign(float(low_hz), float(high_hz), int(order), float(fs), sos, hp, lp, adapted)
 
 

@@ -7,7 +7,7 @@ from scipy import ndimage, signal
 from prep.config import BaselineConfig
 from prep.model import StageLog
 from prep.stages._checks import as_signal
-from prep.stages._design import warped_corner
+from prep.stages._design import butter_sos, warped_corner
 
 
 def _odd(n: float) -> int:
@@ -44,7 +44,7 @@ def remove_baseline(x, fs: float, cfg: BaselineConfig = BaselineConfig()):
         log.derived.update(first_window_samples=w1, second_window_samples=w2)
         return x - median_baseline(x, fs, cfg.first_window_ms, cfg.second_window_ms), log
     corner = warped_corner(cfg.highpass_hz, fs, 2, up=True)
-    sos = signal.butter(2, corner, "highpass", fs=fs, output="sos")
+    sos = butter_sos(2, corner, "highpass", fs)
     padlen = min(x.shape[-1] - 1, int(round(3 * fs / cfg.highpass_hz)))
     log.params["highpass_hz"] = cfg.highpass_hz
     log.derived["design"] = {"type": "Butterworth high-pass, order 2, zero-phase",

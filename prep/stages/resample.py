@@ -7,6 +7,7 @@ import numpy as np
 from scipy import signal
 
 from prep.model import StageLog
+from prep.stages._design import butter_sos
 
 
 def cut_and_resample(x: np.ndarray, start: np.ndarray, end: np.ndarray, n_out: int, fs: float):
@@ -43,7 +44,7 @@ def cut_and_resample(x: np.ndarray, start: np.ndarray, end: np.ndarray, n_out: i
     longest = int(lengths.max())
     cutoff = 0.45 * fs * n_out / longest
     if cutoff < 0.45 * fs:
-        sos = signal.butter(6, cutoff, "lowpass", fs=fs, output="sos")
+        sos = butter_sos(6, cutoff, "lowpass", fs)
         x = signal.sosfiltfilt(sos, x, axis=-1)
     pos = start[:, None] + (lengths[:, None] - 1) * np.linspace(0.0, 1.0, n_out)[None, :]
     i0 = np.floor(pos).astype(np.int64)

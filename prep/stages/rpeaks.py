@@ -25,6 +25,7 @@ from scipy import ndimage, signal
 from prep.config import RpeaksConfig
 from prep.model import StageLog
 from prep.stages._checks import as_signal
+from prep.stages._design import butter_sos
 from prep.stages._fusion import (PRUNE_RR, QUALITY_WINDOW_S, Fused, LeadEvidence, fuse,
                                  primary_lead, running_median)
 
@@ -35,7 +36,7 @@ _REF_QUANTILE = 0.8       # reference = this quantile of candidate heights (tune
 def qrs_envelope(x: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray]:
     """QRS energy envelope and the 5-20 Hz band signal of ``x`` (..., n_samples)."""
     high = min(20.0, 0.45 * fs)
-    sos = signal.butter(3, [5.0, high], btype="bandpass", fs=fs, output="sos")
+    sos = butter_sos(3, [5.0, high], "bandpass", fs)
     band = signal.sosfiltfilt(sos, x, axis=-1, padlen=min(x.shape[-1] - 1, int(fs)))
     d = np.gradient(band, axis=-1) * fs
     w = max(1, int(round(0.1 * fs)))
