@@ -170,3 +170,19 @@ def test_a_record_without_usable_lead_names_its_file(tmp_path):
     run([tmp_path / "flat.hea"], tmp_path / "out")
     rec = pd.read_parquet(tmp_path / "out" / "records.parquet")
     assert rec.status[0] == "no_usable_lead" and "flat.hea" in rec.error[0]
+
+
+def test_header_text_problems_are_said_in_the_files_terms(tmp_path):
+    # WFDB header format (PhysioNet 'header' man page): the record line's second field is the
+    # number of signal lines that follow
+    np.zeros(2000, "<i2").tofile(tmp_path / "x.dat")
+    (tmp_path / "x.hea").write_text("x 3 250 1000\nx.dat 16 1000 16 0 0 0 0 II\n")
+    with pytest.raises(RecordError, match="declares 3 signals but the header has 1"):
+        read_wfdb(tmp_path / "x")
+    (tmp_path / "x.hea").write_bytes("x 1 250 1000\nx.dat 16 1000 16 0 0 0 0 II\n# M\xfcller\n"
+                                     .encode("latin-1"))
+    rec = read_wfdb(tmp_path / "x")
+    assert "not UTF-8" in rec.warnings[0] and rec.leads == ["II"]
+    (tmp_path / "y.hea").mkdir()
+    with pytest.raises(RecordError, match="header path is a folder"):
+        read_wfdb(tmp_path / "y")

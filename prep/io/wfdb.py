@@ -185,30 +185,7 @@ def _check_header(base: Path, shown: str, warnings: list[str],
     """
     import wfdb
 
-    hea = Path(str(base) + ".hea")
-    try:
-        raw = hea.read_bytes()
-    except FileNotFoundError:
-        raise RecordError("header file is missing", path=shown, stage="read") from None
-    except IsADirectoryError:
-        raise RecordError("the header path is a folder, not a file", path=shown,
-                          stage="read") from None
-    except PermissionError:
-        raise RecordError("the header file cannot be read (permission denied); ask its owner "
-                          "for read access", path=shown, stage="read") from None
-    if b"\x00" in raw[:4096]:
-        raise RecordError("this is not a WFDB header (binary content); point at the .hea text "
-                          "file", path=shown, stage="read")
-    text = raw.decode("latin-1")
-    lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
-    if not lines:
-        raise RecordError("the header holds no record line", path=shown, stage="read")
-    tokens = lines[0].split()
-    if len(tokens) < 2 or not tokens[1].isdigit():
-        raise RecordError(f"the header's record line {lines[0][:60]!r} is not 'name n_signals "
-                          "[fs [n_samples]]'", path=shown, stage="read")
-    if len(tokens) < 3:
-        warnings.append("the header gives no sampling rate; the WFDB default of 250 Hz is used")
+    tokens = _header_lines(Path(str(base) + ".hea"), shown, warnings)[0].split()
     try:
         h = wfdb.rdheader(str(base))
     except Exception as exc:
@@ -246,6 +223,47 @@ def _check_header(base: Path, shown: str, warnings: list[str],
                         f"the {have} present are used")
         return have
     return None
+
+
+def _header_lines(hea: Path, shown: str, warnings: list[str]) -> list[str]:
+    """The header's record and signal lines, checked as text before wfdb parses it: readable,
+    text, a record line 'name n_signals [fs [n_samples]]' and as many signal lines as it
+    declares (a multi-segment header lists segments instead)."""
+    try:
+        raw = hea.read_bytes()
+    except FileNotFoundError:
+        raise RecordError("header file is missing", path=shown, stage="read") from None
+    except IsADirectoryError:
+        raise RecordError("the header path is a folder, not a file", path=shown,
+                          stage="read") from None
+    except PermissionError:
+        raise RecordError("the header file cannot be read (permission denied); ask its owner "
+                          "for read access", path=shown, stage="read") from None
+    if b"\x00" in raw[:4096]:
+        raise RecordError("this is not a WFDB header (binary content); point at the .hea text "
+                          "file", path=shown, stage="read")
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[:exc.start].count(b"\n") + 1
+        warnings.append(f"the header is not UTF-8 text (byte 0x{raw[exc.start]:02x} on line "
+                        f"{line}); read as Latin-1, characters outside ASCII may be dropped")
+        text = raw.decode("latin-1")
+    lines = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+    if not lines:
+        raise RecordError("the header holds no record line", path=shown, stage="read")
+    tokens = lines[0].split()
+    if len(tokens) < 2 or not tokens[1].isdigit():
+        raise RecordError(f"the header's record line {lines[0][:60]!r} is not 'name n_signals "
+                          "[fs [n_samples]]'", path=shown, stage="read")
+    declared, multi = int(tokens[1]), "/" in tokens[0]
+    if not multi and len(lines) - 1 != declared:
+        raise RecordError(f"the record line declares {declared} signal"
+                          f"{'s' * (declared != 1)} but the header has {len(lines) - 1} signal "
+                          "line(s); make the count match the lines", path=shown, stage="read")
+    if len(tokens) < 3:
+        warnings.append("the header gives no sampling rate; the WFDB default of 250 Hz is used")
+    return lines
 
 
 def _check_shared_files(h, shown: str) -> None:
