@@ -17,7 +17,7 @@ from prep.dataset.check import check_dataset
 from prep.dataset.run import run
 from prep.errors import EXIT_SOME_FAILED
 
-from .conftest import DEMO
+from ..conftest import DEMO
 
 
 def _one(src, tmp_path, **kw):

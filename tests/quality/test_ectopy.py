@@ -18,7 +18,7 @@ from prep.pipeline.record import beats_of_record
 from prep.stages._fusion import LeadEvidence, between_beats
 from prep.stages._fusion import fuse as fuse_det
 
-from .conftest import ref_path
+from ..conftest import ref_path
 
 FS = 250.0
 

@@ -14,7 +14,7 @@ from prep.errors import EXIT_NONE_USABLE, EXIT_OK, EXIT_SOME_FAILED
 from prep.evaluate import match_beats
 from prep.schema import TABLE_FILES, TENSOR_FILES
 
-from .conftest import DEMO, ref_path
+from ..conftest import DEMO, ref_path
 
 TRUTH = json.loads((DEMO / "truth.json").read_text())
 

@@ -12,7 +12,7 @@ from prep.config import Config, WindowsConfig
 from prep.io.wfdb import read_wfdb
 from prep.quality.windows import lead_windows
 
-from .conftest import DEMO, ref_path
+from ..conftest import DEMO, ref_path
 
 TRUTH = json.loads((DEMO / "truth.json").read_text())
 runner = CliRunner()

@@ -9,7 +9,7 @@ import pytest
 import prep
 from prep.io.wfdb import read_wfdb
 
-from .conftest import DEMO, ROOT
+from ..conftest import DEMO, ROOT
 
 
 def test_public_names():

@@ -16,7 +16,7 @@ from prep.config import Config
 from prep.dataset.run import run
 from prep.errors import ConfigError
 
-from .conftest import DEMO
+from ..conftest import DEMO
 
 cli = CliRunner()
 

@@ -6,7 +6,7 @@ from typer.testing import CliRunner
 
 from prep.cli.main import app
 
-from .conftest import DEMO
+from ..conftest import DEMO
 
 runner = CliRunner()
 

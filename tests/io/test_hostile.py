@@ -16,7 +16,7 @@ from prep.io.csv import read_csv
 from prep.io.sources import find_sources, read_source
 from prep.io.wfdb import read_wfdb
 
-from .conftest import DEMO
+from ..conftest import DEMO
 
 
 def _night01(d, name="night01"):
@@ -152,7 +152,7 @@ def test_environment_and_config_mistakes_are_messages(tmp_path, monkeypatch):
 
 
 def test_an_edf_with_zero_duration_records_is_named(tmp_path):
-    from .edf_by_hand import write_edf_plus
+    from ..edf_by_hand import write_edf_plus
     p = tmp_path / "z.edf"
     write_edf_plus(p, np.zeros((1, 2500)), ["ECG II"], 250, 1, [0.0], discontinuous=False)
     raw = bytearray(p.read_bytes())

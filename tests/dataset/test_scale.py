@@ -13,7 +13,7 @@ from prep.dataset.check import check_dataset
 from prep.dataset.run import run
 from prep.schema import TABLE_FILES, TENSOR_FILES
 
-from .conftest import DEMO, ROOT
+from ..conftest import DEMO, ROOT
 
 
 def _bytes(d):
@@ -104,7 +104,7 @@ def test_chunked_and_unchunked_runs_agree():
     from prep.io.sources import Source
     from prep.pipeline.chunks import beats_of_source, chunk_plan
 
-    from .conftest import ref_path
+    from ..conftest import ref_path
     base = ref_path("mitdb", "100")
     src = Source("wfdb", Path(base), "100")
     whole = beats_of_source(src, Config(), ["II", "V5"])
@@ -245,7 +245,7 @@ def test_edf_record_in_chunks_agrees_with_one_piece(tmp_path):
     from prep.io.sources import Source, record_length
     from prep.pipeline.chunks import beats_of_source
 
-    from .conftest import ref_path
+    from ..conftest import ref_path
     n = 12 * 60 * 360
     r = wfdb.rdrecord(str(ref_path("mitdb", "100")), sampto=n)
     a = wfdb.rdann(str(ref_path("mitdb", "100")), "atr", sampto=n)

@@ -11,7 +11,7 @@ from prep.stages.baseline import remove_baseline
 from prep.stages.powerline import remove_powerline
 from prep.stages.rpeaks import detect_beats, detect_lead, refine_r
 
-from .conftest import ref_path
+from ..conftest import ref_path
 
 
 def _clean(x, fs):

@@ -12,8 +12,8 @@ from prep.dataset.run import run
 from prep.io.edf import parse_tals, read_edf
 from prep.io.wfdb import read_wfdb
 
-from .conftest import DEMO, ref_path
-from .edf_by_hand import write_edf_plus
+from ..conftest import DEMO, ref_path
+from ..edf_by_hand import write_edf_plus
 
 
 def _demo(name="night02"):

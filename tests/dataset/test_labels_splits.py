@@ -14,7 +14,7 @@ from prep.dataset.split import SPLITS, assign_patients, fixed_assignment, patien
 from prep.model import BEAT_SYMBOLS, Annotations
 from prep.stages.labels import AAMI_CLASSES, beat_classes, load_mapping, noise_stretches, rhythm_at
 
-from .conftest import DEMO, ref_path
+from ..conftest import DEMO, ref_path
 
 
 def test_aami_table():

@@ -73,7 +73,7 @@ def test_report_of_a_collection_stays_small_and_renders(tmp_path):
     from prep.dataset.run import run
     from prep.report.html import write_report
 
-    from .conftest import DEMO
+    from ..conftest import DEMO
     r = wfdb.rdrecord(str(DEMO / "night01"))
     d = tmp_path / "recs"
     d.mkdir()
