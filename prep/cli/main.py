@@ -112,21 +112,11 @@ def run(inputs: List[str] = typer.Argument(..., metavar="INPUTS", help="WFDB hea
     _setup_logging(verbose, quiet)
     if fs is not None and not fs > 0:
         _fail(f"--fs {fs:g}: a sampling rate is a positive number of Hz (for example --fs 250)")
-    from prep.config import Config
     from prep.dataset.run import run as run_dataset
     from prep.errors import BeatmillError, ConfigError
 
     try:
-        cfg = Config.from_toml(config) if config else Config()
-        if leads:
-            cfg = cfg.replace(leads={"select": [s.strip() for s in leads.split(",") if s.strip()]})
-        if train_classes:
-            cfg = cfg.replace(labels={"train_classes": [c.strip() for c in train_classes.split(",")
-                                                        if c.strip()]})
-        if patients:
-            cfg = cfg.replace(split={"patient_map": str(patients)})
-        if seed is not None:
-            cfg = cfg.replace(split={"seed": seed})
+        cfg = _config_from_options(config, leads, train_classes, patients, seed)
     except ConfigError as exc:
         _fail("\n  ".join(["configuration is invalid:"] + exc.problems))
     progress, stop = _progress(quiet)
@@ -147,6 +137,24 @@ def run(inputs: List[str] = typer.Argument(..., metavar="INPUTS", help="WFDB hea
     if not quiet:
         _print_summary(summary)
     raise typer.Exit(summary.exit_code)
+
+
+def _config_from_options(config, leads, train_classes, patients, seed):
+    """The configuration file (or the defaults) with the command-line options on top."""
+    from prep.config import Config
+
+    def items(text):
+        return [x.strip() for x in text.split(",") if x.strip()]
+    cfg = Config.from_toml(config) if config else Config()
+    if leads:
+        cfg = cfg.replace(leads={"select": items(leads)})
+    if train_classes:
+        cfg = cfg.replace(labels={"train_classes": items(train_classes)})
+    if patients:
+        cfg = cfg.replace(split={"patient_map": str(patients)})
+    if seed is not None:
+        cfg = cfg.replace(split={"seed": seed})
+    return cfg
 
 
 def _plural(n: int, word: str) -> str:

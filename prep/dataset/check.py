@@ -19,7 +19,6 @@ def check_dataset(run_dir: str | Path) -> list[str]:
     import pandas as pd
 
     d = Path(run_dir)
-    problems: list[str] = []
     try:
         finish_swap(d)  # a run killed while moving the dataset in: complete it first
     except BeatmillError as exc:
@@ -34,6 +33,32 @@ def check_dataset(run_dir: str | Path) -> list[str]:
     except PermissionError:
         return [f"{mpath}: cannot be read (permission denied); ask the dataset's owner for read "
                 "access (files written before beatmill 0.1 may be private to their writer)"]
+    problems = _check_files(d, manifest)
+    if problems:
+        return problems
+    try:
+        beats = np.load(d / BEATS_NPY, mmap_mode="r")
+        mask = np.load(d / LEAD_MASK_NPY, mmap_mode="r")
+        center = np.load(d / NORM_CENTER_NPY, mmap_mode="r")
+        scale = np.load(d / NORM_SCALE_NPY, mmap_mode="r")
+        table = pd.read_parquet(d / BEATS_TABLE)
+        records = pd.read_parquet(d / RECORDS_TABLE)
+    except Exception as exc:
+        return [f"{d}: cannot load the dataset files ({type(exc).__name__}: {exc})"]
+    n = beats.shape[0] if beats.ndim == 3 else -1
+    problems += _check_arrays(manifest, beats, mask, center, scale)
+    problems += _check_beat_table(table, records, n)
+    if problems and "missing columns" in problems[-1]:
+        return problems
+    problems += _check_splits_and_labels(table, records, manifest, n)
+    if n > 0 and not np.isfinite(np.asarray(beats[: min(n, 100000)])).all():
+        problems.append("beats.npy: holds non-finite values")
+    return problems
+
+
+def _check_files(d: Path, manifest: dict) -> list[str]:
+    """Every dataset file present, readable, listed in the manifest, with its SHA-256."""
+    problems: list[str] = []
     files = manifest.get("files", {})
     for f in TENSOR_FILES + TABLE_FILES:
         p = d / f
@@ -46,17 +71,12 @@ def check_dataset(run_dir: str | Path) -> list[str]:
                             "for read access")
         elif sha256_file(p) != files[f]:
             problems.append(f"{p}: SHA-256 differs from the manifest (file changed or corrupted)")
-    if problems:
-        return problems
-    try:
-        beats = np.load(d / BEATS_NPY, mmap_mode="r")
-        mask = np.load(d / LEAD_MASK_NPY, mmap_mode="r")
-        center = np.load(d / NORM_CENTER_NPY, mmap_mode="r")
-        scale = np.load(d / NORM_SCALE_NPY, mmap_mode="r")
-        table = pd.read_parquet(d / BEATS_TABLE)
-        records = pd.read_parquet(d / RECORDS_TABLE)
-    except Exception as exc:
-        return [f"{d}: cannot load the dataset files ({type(exc).__name__}: {exc})"]
+    return problems
+
+
+def _check_arrays(manifest: dict, beats, mask, center, scale) -> list[str]:
+    """Tensor dtype, order and shape against the manifest and the lead axis."""
+    problems: list[str] = []
     axis = manifest.get("lead_axis", [])
     n = beats.shape[0] if beats.ndim == 3 else -1
     if beats.ndim != 3 or beats.dtype != np.float32 or not beats.flags.c_contiguous:
@@ -72,10 +92,15 @@ def check_dataset(run_dir: str | Path) -> list[str]:
         if arr.shape != (n, len(axis)) or arr.dtype != dt:
             problems.append(f"{name}: expected shape ({n}, {len(axis)}) {np.dtype(dt)}, got "
                             f"{arr.shape} {arr.dtype}")
+    return problems
+
+
+def _check_beat_table(table, records, n: int) -> list[str]:
+    """Beat rows against the tensor: included rows are its rows, excluded ones say why."""
+    problems: list[str] = []
     missing = [c for c in BEAT_COLUMNS if c not in table.columns]
     if missing:
-        problems.append(f"beats.parquet: missing columns {missing}")
-        return problems
+        return [f"beats.parquet: missing columns {missing}"]
     inc = table["included"].to_numpy(bool)
     ti = table["tensor_index"].to_numpy()
     if int(inc.sum()) != n:
@@ -99,9 +124,6 @@ def check_dataset(run_dir: str | Path) -> list[str]:
                         f"beats.npy has {n}")
     if not set(table["record"]).issubset(set(records["record"])):
         problems.append("beats.parquet: names records that records.parquet does not list")
-    problems += _check_splits_and_labels(table, records, manifest, n)
-    if n > 0 and not np.isfinite(np.asarray(beats[: min(n, 100000)])).all():
-        problems.append("beats.npy: holds non-finite values")
     return problems
 
 

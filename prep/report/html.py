@@ -291,18 +291,10 @@ def _rhythm(ds) -> str:
     return _img(_png(fig), "Heart-rate trend and RR-interval distribution of kept beats")
 
 
-def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
-    """Write RUN_DIR/report.html (or ``out``) and return its path."""
-    import matplotlib
-    matplotlib.use("Agg")
-    ds = open_dataset(run_dir)
+def _counts(ds) -> list[str]:
+    """Counts, reasons, flags, split balance, class yield, patients, records and leads."""
     t, leads, recs, m = ds.table, ds.leads, ds.records, ds.manifest
-    parts = [f"<h1>beatmill dataset report</h1><p class='sub'>{html.escape(str(ds.path))} &middot; "
-             f"beatmill {html.escape(m['tool']['version'])} &middot; config "
-             f"{html.escape(m['config_sha256'][:_HASH])}</p>",
-             "<p class='caution'>Research use only: not a medical device, not for diagnosis. "
-             "Quality decisions are heuristics; have qualified clinical staff review data that "
-             "informs clinical research.</p>"]
+    parts: list[str] = []
     c = m["counts"]
     parts.append("<h2>Counts</h2>")
     parts.append(_table(pd.DataFrame([{"records": c["records"], "ok": c["records_ok"],
@@ -343,15 +335,16 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     bad = recs[recs.status != "ok"][["record", "status", "error"]]
     if len(bad):
         parts.append(_table(bad, "Records not used"))
-    parts += ["<h2>Signal quality over time</h2>", _quality_strips(ds),
-              "<h2>Kept beats per class</h2>", _class_means(ds),
-              "<h2>Scores that decide exclusions</h2>", _score_histograms(ds),
-              "<h2>Excluded beats in context</h2>", _excluded_examples(ds),
-              "<h2>Rhythm</h2>", _rhythm(ds)]
+    return parts
+
+
+def _provenance(ds) -> list[str]:
+    """Run, input files with their checksums and the configuration, collapsed."""
+    recs, m = ds.records, ds.manifest
     inputs = [{"record": r, "file": x["file"], "sha256": x["sha256"]}
               for r, xs in zip(recs.record, recs.inputs) for x in xs]
     env = m.get("environment", {})
-    parts += ["<h2>Provenance</h2><details><summary>Run, input files and configuration"
+    return ["<h2>Provenance</h2><details><summary>Run, input files and configuration"
               "</summary>",
               _table(pd.DataFrame([{"tool": f"beatmill {m['tool']['version']}",
                                     "config sha256": m["config_sha256"][:_HASH],
@@ -364,6 +357,27 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
                                                     else "")),
               "<p class='cap'>Configuration (TOML; 'beatmill config --check' reads it)</p><pre>" +
               html.escape(_config_text(m["config"])) + "</pre></details>"]
+
+
+def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
+    """Write RUN_DIR/report.html (or ``out``) and return its path."""
+    import matplotlib
+    matplotlib.use("Agg")
+    ds = open_dataset(run_dir)
+    m = ds.manifest
+    parts = [f"<h1>beatmill dataset report</h1><p class='sub'>{html.escape(str(ds.path))} &middot; "
+             f"beatmill {html.escape(m['tool']['version'])} &middot; config "
+             f"{html.escape(m['config_sha256'][:_HASH])}</p>",
+             "<p class='caution'>Research use only: not a medical device, not for diagnosis. "
+             "Quality decisions are heuristics; have qualified clinical staff review data that "
+             "informs clinical research.</p>"]
+    parts += _counts(ds)
+    parts += ["<h2>Signal quality over time</h2>", _quality_strips(ds),
+              "<h2>Kept beats per class</h2>", _class_means(ds),
+              "<h2>Scores that decide exclusions</h2>", _score_histograms(ds),
+              "<h2>Excluded beats in context</h2>", _excluded_examples(ds),
+              "<h2>Rhythm</h2>", _rhythm(ds)]
+    parts += _provenance(ds)
     page = f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><title>beatmill report: {html.escape(ds.path.name)}</title>
 <style>
