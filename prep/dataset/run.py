@@ -203,13 +203,25 @@ def lead_axis(found: list[Source], cfg: Config) -> tuple[list[str], dict[str, li
             raise ConfigError(f"--leads / leads.select: {', '.join(hints)} is in no record; the "
                               f"records have {', '.join(present)}")
     else:
-        axis = default_axis(known)
-        if not axis:
-            raise ConfigError("no ECG lead is in at least half of the records; choose the lead "
-                              f"axis with --leads (the records have {', '.join(present)})")
+        axis = default_axis(known) or _most_common(known)
     gaps = {name: [a for a in axis if match_lead(a, x) is None]
             for name, x in peeks.items() if x}
     return axis, {k: v for k, v in gaps.items() if v}
+
+
+def _most_common(known: list[list[str]]) -> list[str]:
+    """When no lead is in half of the records (names that disagree): the most common leads, so
+    that one record's naming never stops a batch; the records lacking them are named in the
+    manifest's warnings."""
+    count: dict[str, int] = {}
+    for leads in known:
+        for lead in set(leads):
+            count[lead] = count.get(lead, 0) + 1
+    top = max(count.values())
+    axis = default_axis([[lead for lead, c in count.items() if c == top]])
+    log.warning("no ECG lead is in at least half of the records; the lead axis is the most "
+                "common, %s (choose it with --leads)", ",".join(axis))
+    return axis
 
 
 def check_train_classes(cfg: Config, mapping: dict) -> Config:

@@ -186,3 +186,16 @@ def test_header_text_problems_are_said_in_the_files_terms(tmp_path):
     (tmp_path / "y.hea").mkdir()
     with pytest.raises(RecordError, match="header path is a folder"):
         read_wfdb(tmp_path / "y")
+
+
+def test_records_of_one_name_in_nested_folders_and_disjoint_lead_names(tmp_path):
+    r = wfdb.rdrecord(str(DEMO / "night01"))
+    for sub, lead in (("a", "II"), ("b", "V5"), ("c", "ECG3")):
+        (tmp_path / sub).mkdir()
+        wfdb.wrsamp("rec", fs=r.fs, units=["mV"], sig_name=[lead], p_signal=r.p_signal[:, :1],
+                    fmt=["16"], write_dir=str(tmp_path / sub))
+    found, _ = find_sources([tmp_path])
+    assert sorted(s.name for s in found) == ["a/rec", "b/rec", "c/rec"]
+    # no lead is in half of the records: the batch still runs, on the most common leads
+    s = run([tmp_path], tmp_path / "out")
+    assert s.n_records == 3 and s.exit_code in (0, 1) and s.warnings
