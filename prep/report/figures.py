@@ -20,13 +20,17 @@ def plot_beat_context(ds, beat_id: str, out: str | Path, seconds: float = 3.0) -
     import matplotlib.pyplot as plt
 
     from prep.config import ReadConfig
-    from prep.io.sources import Source, read_source
+    from prep.io.sources import Source, find_sources, read_source
 
     info = ds.explain(beat_id)
     rec_name = info["record"]
-    src = Path(ds.source_of(rec_name))
-    kind = "csv" if src.suffix.lower() == ".csv" else "wfdb"
-    rec = read_source(Source(kind, src, rec_name),
+    found, problems = find_sources([ds.source_of(rec_name)])
+    if not found:
+        from prep.errors import BeatmillError
+        raise BeatmillError(f"{rec_name}: its record file is not where the dataset was made "
+                            f"from ({'; '.join(problems)}); the figure needs the signal")
+    src = found[0]
+    rec = read_source(Source(src.kind, src.path, rec_name),
                       ReadConfig(**ds.manifest["config"]["read"]))
     fs = rec.fs
     r = info["r_sample"]
@@ -54,7 +58,8 @@ def plot_beat_context(ds, beat_id: str, out: str | Path, seconds: float = 3.0) -
                        color=CUT, alpha=0.12, lw=0, label="cut window")
         for row in near.itertuples():
             ax.axvline(row.r_sample / fs, color=KEPT if row.included else EXCLUDED, lw=1.0,
-                       ls="-" if row.included else "--")
+                       ls="-" if row.included else "--",
+                       label="R of a kept beat" if row.included else "R of an excluded row")
         ax.set_ylabel(f"{rec.leads[j]} (mV)")
         ax.grid(alpha=0.2)
     axes[-1, 0].set_xlabel("time in record (s)")

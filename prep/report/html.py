@@ -223,44 +223,108 @@ def _score_histograms(ds) -> str:
 
 
 def _excluded_examples(ds, per_reason: int = 2) -> str:
-    import matplotlib.pyplot as plt
-
-    from prep.config import ReadConfig
-    from prep.io.sources import Source, read_source
+    """Excluded rows, a few per reason drawn at random (seed 0, no row twice), each on every
+    lead of its record with the deciding score and threshold written on the figure."""
     t = ds.table
-    out = []
-    seg = ds.manifest["config"]["segment"]
+    rng = np.random.default_rng(0)
+    drawn: set[str] = set()
     cache: dict[str, object] = {}
+    out = []
     for code in REASONS:
-        hit = t[t.reasons.str.split(";").apply(lambda xs: code in xs)]
+        hit = t[t.reasons.str.split(";").apply(lambda xs: code in xs) & ~t.beat_id.isin(drawn)]
         if hit.empty:
             continue
-        for row in hit.head(per_reason).itertuples():
-            try:
-                if row.record not in cache:
-                    src = Path(ds.source_of(row.record))
-                    kind = {".csv": "csv", ".edf": "edf"}.get(src.suffix.lower(), "wfdb")
-                    cache[row.record] = read_source(Source(kind, src, row.record),
-                                                    ReadConfig(**ds.manifest["config"]["read"]))
-                rec = cache[row.record]
-            except Exception as exc:  # the source moved or is unreadable: say so on the page
-                out.append(f"<p>{html.escape(row.beat_id)}: source not readable ({html.escape(str(exc))})</p>")
+        pick = hit.iloc[np.sort(rng.choice(len(hit), size=min(per_reason, len(hit)),
+                                           replace=False))]
+        for row in pick.itertuples():
+            drawn.add(row.beat_id)
+            rec = _record_of(ds, row.record, cache)
+            if isinstance(rec, str):  # the source moved or is unreadable: say so on the page
+                out.append(f"<p>{html.escape(row.beat_id)}: source not readable "
+                           f"({html.escape(rec)})</p>")
                 continue
-            fs, r = rec.fs, int(row.r_sample)
-            a, b = max(0, int(r - 2 * fs)), min(rec.n_samples, int(r + 2 * fs))
-            fig, ax = plt.subplots(figsize=(6, 1.8))
-            xs = rec.signals[0, a:b]
-            ax.plot(np.arange(a, b) / fs, xs - np.nanmedian(xs), color="#222222", lw=0.8)
-            if seg["mode"] == "fixed":
-                ax.axvspan((r - seg["before_ms"] * fs / 1000) / fs,
-                           (r + seg["after_ms"] * fs / 1000) / fs, color=TOL[1], alpha=0.3, lw=0)
-            ax.axvline(r / fs, color=TOL[4], ls="--", lw=1)
-            ax.set_xlabel("time in record (s)", fontsize=8)
-            ax.set_ylabel(f"{rec.leads[0]} (mV)", fontsize=8)
-            ax.set_title(f"{row.beat_id}: {row.reasons}", fontsize=8)
-            out.append(_img(_png(fig), f"Excluded beat {row.beat_id} ({code}); run "
-                                       f"'beatmill why {ds.path} {row.beat_id}' for details"))
+            out.append(_excluded_figure(ds, rec, row, code))
     return "\n".join(out) or "<p>No excluded beats.</p>"
+
+
+def _rejected_leads(ds, top: int = 8) -> str:
+    """Rejected ECG leads drawn for 10 s from their first unusable window, with the reason."""
+    import matplotlib.pyplot as plt
+    leads, w = ds.leads, (ds._table("windows") if (ds.path / WINDOWS_TABLE).exists() else None)
+    if leads.empty or "usable_share" not in leads:
+        return "<p>No lead was rejected.</p>"
+    bad = leads[~leads.used.astype(bool) & leads.usable_share.notna() & (leads.reason != "")]
+    if bad.empty:
+        return "<p>No ECG lead was rejected.</p>"
+    out, cache = [], {}
+    for row in bad.head(top).itertuples():
+        rec = _record_of(ds, row.record, cache)
+        if isinstance(rec, str) or row.lead not in rec.leads:
+            continue
+        j, fs = rec.leads.index(row.lead), rec.fs
+        start = 0
+        if w is not None:
+            lw = w[(w.record == row.record) & (w.lead == row.lead) & (w.grade == "unusable")]
+            start = int(lw.start.iloc[0]) if len(lw) else 0
+        a, b = start, min(rec.n_samples, start + int(10 * fs))
+        fig, ax = plt.subplots(figsize=(6, 1.6))
+        ax.plot(np.arange(a, b) / fs, rec.signals[j, a:b], color="#222222", lw=0.7)
+        ax.axvspan(a / fs, b / fs, color=TOL[4], alpha=0.12, lw=0)
+        ax.set_title(f"{row.record} {row.lead}: {row.reason}", fontsize=8)
+        ax.set_xlabel("time in record (s)", fontsize=8)
+        ax.set_ylabel("mV", fontsize=8)
+        out.append(_img(_png(fig), f"Rejected lead {row.record} {row.lead}: 10 s from its first "
+                                   "unusable window (shaded)"))
+    note = "" if len(bad) <= top else f"<p>{top} of {len(bad)} rejected leads drawn.</p>"
+    return "\n".join(out) + note
+
+
+def _record_of(ds, name: str, cache: dict):
+    """The record's signal (read once per report), or why it cannot be read."""
+    from prep.config import ReadConfig
+    from prep.io.sources import Source, find_sources, read_source
+    if name not in cache:
+        try:
+            found, problems = find_sources([ds.source_of(name)])
+            if not found:
+                raise ValueError("; ".join(problems))
+            cache[name] = read_source(Source(found[0].kind, found[0].path, name),
+                                      ReadConfig(**ds.manifest["config"]["read"]))
+        except Exception as exc:
+            cache[name] = str(exc)
+    return cache[name]
+
+
+def _excluded_figure(ds, rec, row, code: str) -> str:
+    import matplotlib.pyplot as plt
+    seg = ds.manifest["config"]["segment"]
+    fs, r = rec.fs, int(row.r_sample)
+    a, b = max(0, int(r - 2 * fs)), min(rec.n_samples, int(r + 2 * fs))
+    n = min(len(rec.leads), 6)
+    fig, axes = plt.subplots(n, 1, figsize=(6, 1.1 * n + 0.7), sharex=True, squeeze=False)
+    for j, ax in enumerate(axes[:, 0]):
+        xs = rec.signals[j, a:b]
+        ax.plot(np.arange(a, b) / fs, xs - np.nanmedian(xs), color="#222222", lw=0.7)
+        if seg["mode"] == "fixed":
+            ax.axvspan((r - seg["before_ms"] * fs / 1000) / fs,
+                       (r + seg["after_ms"] * fs / 1000) / fs, color=TOL[1], alpha=0.3, lw=0)
+        ax.axvline(r / fs, color=TOL[4], ls="--", lw=1)
+        ax.set_ylabel(f"{rec.leads[j]}\n(mV)", fontsize=7)
+        ax.tick_params(labelsize=7)
+    axes[-1, 0].set_xlabel("time in record (s)", fontsize=8)
+    axes[0, 0].set_title(f"{row.beat_id}: {row.reasons}" + _evidence_text(ds, row.beat_id, code),
+                         fontsize=8)
+    return _img(_png(fig), f"Excluded row {row.beat_id} ({code}); run "
+                           f"'beatmill why {ds.path} {row.beat_id}' for details")
+
+
+def _evidence_text(ds, beat_id: str, code: str) -> str:
+    """'; score S = v (threshold T = t)' for a reason that reads one score, else ''."""
+    for item in ds.explain(beat_id)["reasons"]:
+        if item.get("code") == code and "score_name" in item:
+            return (f"\n{item['score_name']} = {item['score']} "
+                    f"(threshold {item['threshold_name']} = {item['threshold']})")
+    return ""
 
 
 def _rhythm(ds) -> str:
@@ -376,6 +440,7 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
               "<h2>Kept beats per class</h2>", _class_means(ds),
               "<h2>Scores that decide exclusions</h2>", _score_histograms(ds),
               "<h2>Excluded beats in context</h2>", _excluded_examples(ds),
+              "<h2>Rejected leads</h2>", _rejected_leads(ds),
               "<h2>Rhythm</h2>", _rhythm(ds)]
     parts += _provenance(ds)
     page = f"""<!doctype html>
