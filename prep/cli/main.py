@@ -353,7 +353,10 @@ def leads(inputs: List[str] = typer.Argument(..., metavar="INPUTS", help="Record
                                             "meet, e.g. 'usable>=0.8' or 'II:good>=0.5'; "
                                             "repeatable."),
           config: Optional[Path] = typer.Option(None, "--config", "-c", metavar="CONFIG", help="TOML configuration."),
-          fs: Optional[float] = typer.Option(None, "--fs", metavar="FS", help="Sampling rate of CSV inputs.")) -> None:
+          fs: Optional[float] = typer.Option(None, "--fs", metavar="FS", help="Sampling rate of CSV inputs."),
+          workers: Optional[int] = typer.Option(None, "--workers", "-w", min=1, metavar="WORKERS",
+                                                help="Parallel processes (default: all cores)."),
+          quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress lines.")) -> None:
     """Survey lead quality without writing a dataset; exit 1 when a lead fails a --require rule.
 
     Measures: usable (share of windows not unusable), good (share of good windows).
@@ -371,7 +374,10 @@ def leads(inputs: List[str] = typer.Argument(..., metavar="INPUTS", help="Record
         if fs:
             cfg = cfg.replace(read={"csv_fs_hz": float(fs)})
         rules = [parse_rule(r) for r in require]
-        table, failed = survey(inputs, cfg)
+
+        def progress(name, done, total):
+            typer.echo(f"beatmill: surveyed {done}/{total} {name}", err=True)
+        table, failed = survey(inputs, cfg, workers, None if quiet else progress)
     except ConfigError as exc:
         _fail("\n  ".join(exc.problems))
     if table.empty and not failed:

@@ -30,26 +30,57 @@ def parse_rule(text: str) -> tuple[str | None, str, str, float]:
     return (canonical_lead(m["lead"]) if m["lead"] else None), m["what"], m["op"], v
 
 
-def survey(inputs, cfg: Config) -> tuple[pd.DataFrame, list[tuple[str, str]]]:
-    """One row per record and ECG lead: used, usable and good shares, window counts, main fault."""
+def survey(inputs, cfg: Config, workers: int | None = None,
+           progress=None) -> tuple[pd.DataFrame, list[tuple[str, str]]]:
+    """One row per record and ECG lead: used, usable and good shares, window counts, main fault.
+    ``workers``: parallel processes (as ``beatmill run``); ``progress(name, done, total)`` is
+    called after each record."""
     found, problems = find_sources(list(inputs))
     if problems or not found:
         raise ConfigError(problems or ["no input records given"])
+    from prep.dataset.execute import n_workers
+    n = min(n_workers(workers), len(found))
     rows, failed = [], []
-    for src in found:
-        try:
-            rec = read_source(src, cfg.read)
-            res = beats_of_record(rec, cfg, rec.leads)
-        except BeatmillError as exc:
-            failed.append((src.name, str(exc)))
-            continue
-        for lead in res.leads:
-            if "windows_good" not in lead:
-                continue  # skipped non-ECG channel
-            n = lead["windows_good"] + lead["windows_noisy"] + lead["windows_unusable"]
-            rows.append({**lead, "usable": lead["usable_share"],
-                         "good": lead["windows_good"] / max(n, 1)})
+    if n > 1:
+        import multiprocessing as mp
+        from concurrent.futures import ProcessPoolExecutor
+        method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
+        with ProcessPoolExecutor(n, mp_context=mp.get_context(method)) as pool:
+            done = pool.map(_survey_one, [(src, cfg) for src in found])
+            results = list(_with_progress(done, found, progress))
+    else:
+        results = list(_with_progress(map(_survey_one, [(src, cfg) for src in found]), found,
+                                      progress))
+    for name, lead_rows, error in results:
+        if error:
+            failed.append((name, error))
+        rows += lead_rows
     return pd.DataFrame(rows), failed
+
+
+def _with_progress(results, found, progress):
+    for k, res in enumerate(results):
+        if progress:
+            progress(found[k].name, k + 1, len(found))
+        yield res
+
+
+def _survey_one(args) -> tuple[str, list[dict], str]:
+    """One record's lead rows (or its error), in this process or a worker."""
+    src, cfg = args
+    try:
+        rec = read_source(src, cfg.read)
+        res = beats_of_record(rec, cfg, rec.leads)
+    except BeatmillError as exc:
+        return src.name, [], str(exc)
+    rows = []
+    for lead in res.leads:
+        if "windows_good" not in lead:
+            continue  # skipped non-ECG channel
+        n = lead["windows_good"] + lead["windows_noisy"] + lead["windows_unusable"]
+        rows.append({**lead, "usable": lead["usable_share"],
+                     "good": lead["windows_good"] / max(n, 1)})
+    return src.name, rows, ""
 
 
 def check_rules(table: pd.DataFrame, rules) -> list[str]:
