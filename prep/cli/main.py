@@ -185,30 +185,47 @@ def _progress(quiet: bool):
     per record; nothing with --quiet."""
     if quiet:
         return None, lambda: None
+    import prep.pipeline.chunks as chunks
     if not sys.stderr.isatty() or os.environ.get("CI"):
         def line(res, done, total):
             what = res.error if res.status != "ok" else f"{res.n_beats} beats, {res.n_kept} kept"
             typer.echo(f"beatmill: record {done}/{total} {res.name}: {res.status}, {what}",
                        err=True)
-        return line, lambda: None
+
+        def chunk_line(name, done, total):  # a long record: where it is within itself
+            if done < total:
+                typer.echo(f"beatmill: {name}: chunk {done}/{total}", err=True)
+        chunks.on_chunk = chunk_line
+        return line, lambda: setattr(chunks, "on_chunk", None)
     from rich.console import Console
     from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                                TimeElapsedColumn, TimeRemainingColumn)
 
-    bar = Progress(TextColumn("records"), BarColumn(), MofNCompleteColumn(),
+    bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                    TextColumn("{task.fields[kept]} beats kept"), TimeElapsedColumn(),
                    TextColumn("left"), TimeRemainingColumn(),
                    console=Console(stderr=True, no_color=bool(os.environ.get("NO_COLOR"))))
-    state = {"task": None, "kept": 0}
+    state = {"task": None, "kept": 0, "chunk": None}
     bar.start()
 
     def update(res, done, total):
         if state["task"] is None:
-            state["task"] = bar.add_task("run", total=total, kept=0)
+            state["task"] = bar.add_task("records", total=total, kept=0)
         state["kept"] += res.n_kept
         bar.update(state["task"], completed=done, kept=state["kept"])
 
-    return update, bar.stop
+    def chunk(name, done, total):  # in this process only: a long record's own progress
+        if state["chunk"] is None:
+            state["chunk"] = bar.add_task(f"chunks of {name}", total=total, kept=state["kept"])
+        bar.update(state["chunk"], completed=done, total=total,
+                   visible=done < total)
+
+    chunks.on_chunk = chunk
+
+    def stop():
+        bar.stop()
+        chunks.on_chunk = None
+    return update, stop
 
 
 @app.command("config")

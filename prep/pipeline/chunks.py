@@ -35,6 +35,12 @@ def chunk_plan(n: int, fs: float, cfg: Config) -> list[tuple[int, int, int, int]
             for a in range(0, n, chunk)]
 
 
+#: called as ``on_chunk(record, done, total)`` after each chunk of a long record, in the
+#: process that processes it (a front end sets it to show progress within one long record;
+#: forked workers inherit it)
+on_chunk = None
+
+
 def beats_of_source(src: Source, cfg: Config, axis: list[str], mapping=None,
                     inputs=None) -> RecordResult:
     """Read and process one source, in chunks when it is a long WFDB or EDF/EDF+C record
@@ -47,12 +53,14 @@ def beats_of_source(src: Source, cfg: Config, axis: list[str], mapping=None,
                              mapping)
     parts = []
     inputs = inputs or source_inputs(src, cfg.read)  # hashed once, not once per chunk
-    for lo, a, b, hi in plan:  # one step per chunk
+    for k, (lo, a, b, hi) in enumerate(plan):  # one step per chunk
         res = record_result(lambda: read_source(src, cfg.read, inputs, sampfrom=lo, sampto=hi),
                             src.name, cfg, axis, mapping)
         if res.status == "failed":
             return RecordResult(src.name, "failed", error=f"chunk {a}-{b}: {res.error}")
         parts.append((lo, a, b, _core(lo, a, b, res)))  # drop the overlap at once: bounded memory
+        if on_chunk is not None:
+            on_chunk(src.name, k + 1, len(plan))
     return merge_chunks(src, parts, n, fs, cfg)
 
 
