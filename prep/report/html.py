@@ -79,15 +79,26 @@ def _quality_strips(ds, top: int = 40) -> str:
 
 
 def _class_means(ds) -> str:
-    import matplotlib.pyplot as plt
+    """Per split, class and axis lead: the mean kept beat, its band and five beats at random."""
     t = ds.table
     kept = t[t.included].sort_values("tensor_index")
     if kept.empty:
         return "<p>No kept beats.</p>"
+    out = []
+    for split in ("train", "val", "test"):
+        part = kept[kept["split"] == split]
+        if len(part):
+            out.append(_class_figure(ds, part, split))
+    return "\n".join(out)
+
+
+def _class_figure(ds, kept, split: str) -> str:
+    import matplotlib.pyplot as plt
     classes = [c for c in ds.class_names if (kept["beat_class"] == c).any()]
     axis = ds.lead_axis
-    n_show = min(len(axis), 6)
-    fig, axes = plt.subplots(n_show, len(classes), figsize=(2.6 * len(classes) + 1, 1.8 * n_show + 0.6),
+    n_show = len(axis)
+    fig, axes = plt.subplots(n_show, len(classes),
+                             figsize=(2.6 * len(classes) + 1, 1.3 * n_show + 0.8),
                              squeeze=False, sharex=True)
     x, xlabel = _beat_axis(ds)
     rng = np.random.default_rng(0)  # the same examples every time
@@ -104,14 +115,16 @@ def _class_means(ds) -> str:
                 for k in rng.choice(len(b), size=min(5, len(b)), replace=False):
                     ax.plot(x, b[k], color=TOL[1], lw=0.5, alpha=0.8)
                 ax.plot(x, m, color=TOL[0], lw=1.4)
-            ax.set_title(f"{c} ({idx.size}) {axis[j]}", fontsize=8)
+            ax.set_title(f"{c} ({idx.size}) {axis[j]}", fontsize=7)
+            ax.tick_params(labelsize=6)
             if ci == 0:
-                ax.set_ylabel("normalized (a.u.)", fontsize=7)
+                ax.set_ylabel("a.u.", fontsize=6)
             if j == n_show - 1:
                 ax.set_xlabel(xlabel, fontsize=7)
-    fig.suptitle("Kept beats per class and lead: mean (dark line), +-1 SD (band), five beats "
-                 "drawn at random (seed 0, thin lines)")
-    return _img(_png(fig), "Kept beats per class and lead: mean and spread")
+    fig.suptitle(f"{split}: kept beats per class and lead: mean (dark line), +-1 SD (band), five "
+                 "beats drawn at random (seed 0, thin lines)", fontsize=9)
+    fig.tight_layout()
+    return _img(_png(fig), f"Kept beats of the {split} split per class and lead, normalized")
 
 
 def _beat_axis(ds) -> tuple[np.ndarray, str]:
