@@ -133,6 +133,11 @@ class Dataset:
         return self._table("records")
 
     @property
+    def windows(self) -> pd.DataFrame | None:
+        """windows.parquet (one row per record, lead and quality window); None when absent."""
+        return self._table("windows") if (self.path / WINDOWS_TABLE).exists() else None
+
+    @property
     def lead_axis(self) -> list[str]:
         return list(self.manifest["lead_axis"])
 

@@ -11,7 +11,7 @@ failure so that the batch goes on. The steps, in order (each a function below):
 5. ``_mask``       - leads masked per beat (annotated noise, flat or clipped leads)
 6. ``_score``      - the evidence the quality rules read (:class:`prep.quality.rules.BeatEvidence`)
 7. ``_decide``     - reason codes and flags (:func:`prep.quality.rules.decide`)
-8. ``_tabulate``   - tensor rows, heartbeats, RR, labels and the beat table
+8. ``tabulate``    - tensor rows, heartbeats, RR, labels and the beat table (tabulate.py)
 """
 from __future__ import annotations
 
@@ -26,20 +26,20 @@ import pandas as pd
 from prep.config import Config
 from prep.errors import BeatmillError, RecordError
 from prep.leads import match_lead
-from prep.model import BEAT_SYMBOLS, Record, StageLog
+from prep.model import Record, StageLog
 from prep.pipeline.result import RecordResult
-from prep.pipeline.rr import UNCONFIRMED, rr_to_beats, unknown_across
+from prep.pipeline.rr import rr_to_beats
 from prep.pipeline.signals import fill_gaps, second_detector
-from prep.quality import reasons as R
-from prep.quality.faults import fault_reason, lead_faults, window_fraction
+from prep.pipeline.tabulate import lead_row, tabulate
+from prep.quality.faults import (copied_leads, fault_reason, lead_faults, usable_of_recorded,
+                                 window_fraction)
 from prep.quality.rules import BeatEvidence, decide, quality_log
 from prep.quality.scores import cut_beat_scores, detector_agreement, high_freq, qrs_match
 from prep.quality.windows import grade_codes, lead_windows, main_fault
 from prep.schema import empty_beats
 from prep.stages.bandpass import bandpass
 from prep.stages.baseline import remove_baseline
-from prep.stages.labels import (attach_labels, beat_classes, class_yield, noise_stretches,
-                                rhythm_at, unknown_symbols)
+from prep.stages.labels import noise_stretches
 from prep.stages.powerline import remove_powerline
 from prep.stages.resample import cut_and_resample
 from prep.stages.rpeaks import detect_leads, fuse_leads
@@ -115,7 +115,7 @@ def beats_of_record(rec: Record, cfg: Config, axis: list[str],
     _mask(st)
     _score(st)
     _decide(st)
-    _tabulate(st, mapping)
+    tabulate(st, mapping)
     return res
 
 
@@ -151,32 +151,6 @@ def _condition(st: _State) -> None:
     res.logs.append(lg)
     st.y, lg = remove_baseline(y, fs, cfg.baseline)
     res.logs.append(lg)
-
-
-def usable_of_recorded(fault: dict) -> float:
-    """Share of a lead's recorded (not missing) samples that are neither flat nor clipped.
-
-    >>> usable_of_recorded({"usable_fraction": 0.09, "missing_fraction": 0.9})
-    0.9
-    """
-    present = 1.0 - fault["missing_fraction"]
-    return round(fault["usable_fraction"] / present, 12) if present > 0 else 0.0
-
-
-def copied_leads(x: np.ndarray) -> list[tuple[int, int]]:
-    """(j, k) for every lead k that holds exactly the samples of an earlier lead j.
-
-    >>> copied_leads(np.array([[1.0, 2.0], [1.0, 2.0], [1.0, 3.0]]))
-    [(0, 1)]
-    """
-    out, taken = [], set()
-    for k in range(1, x.shape[0]):
-        for j in range(k):
-            if j not in taken and np.array_equal(x[j], x[k], equal_nan=True):
-                out.append((j, k))
-                taken.add(k)
-                break
-    return out
 
 
 def _grade_leads(st: _State) -> None:
@@ -243,7 +217,7 @@ def _fuse(st: _State) -> None:
                            clean=[st.grades[d.lead] == 0 for d in use])
     res.logs.append(lg)
     st.fused = fused
-    res.leads = [_lead_row(rec, j, st.usable[j], st.lead_reason[j], st.axis, st.fault[j],
+    res.leads = [lead_row(rec, j, st.usable[j], st.lead_reason[j], st.axis, st.fault[j],
                            res.windows[res.windows.lead == rec.leads[j]])
                  for j in range(len(rec.leads))]
     for name, why in rec.skipped:
@@ -388,76 +362,6 @@ def _decide(st: _State) -> None:
         st.flags[i] += flags[k]
     st.scores["window_grade"][st.vi] = grade
     st.res.logs.append(quality_log(st.cfg.quality, st.n_library, st.reasons))
-
-
-def _tabulate(st: _State, mapping: dict[str, str] | None) -> None:
-    """Tensor rows of the kept beats, heartbeats and their RR, labels, the beat table."""
-    rec, cfg, res, fused = st.rec, st.cfg, st.res, st.fused
-    r, n, fs = fused.r, fused.r.size, rec.fs
-    included = np.array([not x for x in st.reasons], bool)
-    tensor_index = np.full(n, -1, np.int64)
-    tensor_index[included] = np.arange(int(included.sum()))
-    pos = np.full(n, -1, np.int64)
-    pos[st.vi] = np.arange(st.vi.size)
-    res.tensor = st.beats_mv[pos[included]].astype(np.float32)  # as stored in shards
-    res.mask = st.mask[pos[included]]
-    # heartbeats: every row but detections judged not to be one; RR runs between heartbeats only
-    is_beat = np.array([not any(R.group(c) == R.NOT_A_BEAT for c in x) for x in st.reasons],
-                       bool)
-    rr_prev, rr_next = rr_to_beats(r, r[is_beat], fs)
-    # a detection that could not be confirmed in noise may have been a heartbeat: where one lies
-    # between a row and its neighbouring heartbeat, that RR is unknown (NaN), not a guess
-    unsure = np.array([any(c in UNCONFIRMED for c in x) for x in st.reasons], bool)
-    rr_prev, rr_next = unknown_across(r, r[unsure & ~is_beat], rr_prev, rr_next, fs)
-    labels = _labels(st, mapping)
-    res.class_yield = class_yield(r, included, rec.annotations, fs, cfg.labels.window_ms, mapping)
-    res.beats = pd.DataFrame({
-        "beat_id": [f"{rec.name}:{int(s)}" for s in r], "record": rec.name,
-        "r_sample": r.astype(np.int64), "r_time_s": r / fs, "rr_prev_s": rr_prev,
-        "rr_next_s": rr_next, "included": included, "is_beat": is_beat,
-        "reasons": [R.join(x) for x in st.reasons], "tensor_index": tensor_index,
-        "beat_flags": [R.join(x) if inc else "" for x, inc in zip(st.flags, included)],
-        "label": labels.astype(str), "beat_class": beat_classes(labels, mapping).astype(str),
-        "rhythm": rhythm_at(r, rec.annotations).astype(str),
-        "detect_conf": np.round(fused.confidence, 6),
-        "n_leads_seen": fused.support.sum(axis=1).astype(np.int64),
-        **{k: (np.round(v, 6) if v.dtype.kind == "f" else v) for k, v in st.scores.items()}})
-
-
-def _labels(st: _State, mapping: dict[str, str] | None) -> np.ndarray:
-    """Reference labels of every row; none (with a warning) when they do not fit the signal.
-    Annotation labels no class table knows are named in a warning with their counts."""
-    rec, cfg, fused = st.rec, st.cfg, st.fused
-    labels = attach_labels(fused.r, rec.annotations, rec.fs, cfg.labels.window_ms,
-                           extra_symbols=tuple(mapping or {}))
-    unknown = unknown_symbols(rec.annotations, mapping)
-    if unknown:
-        shown = ", ".join(f"{s!r} x{n}" for s, n in sorted(unknown.items(), key=lambda kv: -kv[1])[:8])
-        st.res.warnings.append(f"reference annotations ({rec.annotations.source}) hold labels no "
-                               f"class table knows, left out (their beats are unlabeled): {shown}; "
-                               "name them in labels.mapping_file")
-    if rec.annotations is not None and st.ra.size >= 20:
-        n_ann = int(np.isin(rec.annotations.symbol, list(BEAT_SYMBOLS)).sum())
-        hit = float((labels[fused.accepted] != "").mean())
-        if n_ann >= 20 and hit < 0.5:
-            st.res.warnings.append(f"reference annotations ({rec.annotations.source}) do not fit "
-                                   f"this signal: only {hit:.0%} of detected beats have one "
-                                   f"within {cfg.labels.window_ms:g} ms; labels not attached "
-                                   "(is the file for another record?)")
-            labels = np.full(fused.r.size, "", dtype=object)
-    return labels
-
-
-def _lead_row(rec: Record, j: int, used: bool, reason: str, axis: list[str], fault: dict,
-              w: pd.DataFrame) -> dict:
-    counts = w["grade"].value_counts()
-    return {"record": rec.name, "lead": rec.leads[j], "source_name": rec.lead_names[j],
-            "used": bool(used), "reason": reason,
-            "in_axis": match_lead(rec.leads[j], axis) is not None, **fault,
-            "windows_good": int(counts.get("good", 0)), "windows_noisy": int(counts.get("noisy", 0)),
-            "windows_unusable": int(counts.get("unusable", 0)),
-            "usable_share": float((w["grade"] != "unusable").mean()) if len(w) else 0.0,
-            "main_fault": main_fault(w)}
 
 
 def record_result(rec_loader: Callable[[], Record], name: str, cfg: Config,

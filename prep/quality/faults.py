@@ -84,3 +84,29 @@ def fault_reason(f: dict) -> str:
              (f["missing_fraction"], "missing samples")]
     share, what = max(parts)
     return f"only {f['usable_fraction']:.0%} usable; mostly {what} ({share:.0%})"
+
+
+def usable_of_recorded(fault: dict) -> float:
+    """Share of a lead's recorded (not missing) samples that are neither flat nor clipped.
+
+    >>> usable_of_recorded({"usable_fraction": 0.09, "missing_fraction": 0.9})
+    0.9
+    """
+    present = 1.0 - fault["missing_fraction"]
+    return round(fault["usable_fraction"] / present, 12) if present > 0 else 0.0
+
+
+def copied_leads(x: np.ndarray) -> list[tuple[int, int]]:
+    """(j, k) for every lead k that holds exactly the samples of an earlier lead j.
+
+    >>> copied_leads(np.array([[1.0, 2.0], [1.0, 2.0], [1.0, 3.0]]))
+    [(0, 1)]
+    """
+    out, taken = [], set()
+    for k in range(1, x.shape[0]):
+        for j in range(k):
+            if j not in taken and np.array_equal(x[j], x[k], equal_nan=True):
+                out.append((j, k))
+                taken.add(k)
+                break
+    return out

@@ -5,7 +5,6 @@ from pathlib import Path
 
 import numpy as np
 
-from prep.schema import WINDOWS_TABLE
 
 GRADE_COLOURS = {"good": None, "noisy": "#f2c14e", "unusable": "#d1495b"}  # amber, red
 KEPT, EXCLUDED, CUT = "#2e7d32", "#c62828", "#1565c0"  # green, red, blue
@@ -39,7 +38,7 @@ def plot_beat_context(ds, beat_id: str, out: str | Path, seconds: float = 3.0) -
     table = ds.table
     near = table[(table["record"] == rec_name) & (table["r_sample"] >= a) & (table["r_sample"] < b)]
     seg = ds.manifest["config"]["segment"]
-    w = ds._table("windows") if (ds.path / WINDOWS_TABLE).exists() else None
+    w = ds.windows
     n = len(rec.leads)
     fig, axes = plt.subplots(n, 1, figsize=(10, 1.8 * n + 0.8), sharex=True, squeeze=False)
     for j, ax in enumerate(axes[:, 0]):
