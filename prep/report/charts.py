@@ -158,6 +158,46 @@ def score_histograms(ds) -> str:
     return img(png(fig), "Deciding beat scores with their thresholds (vertical line)")
 
 
+#: window index -> the windows settings that grade on it
+_WINDOW_DECIDING = [("ksqi", ["min_ksqi"]), ("psqi", ["psqi_range"]), ("bassqi", ["min_bassqi"]),
+                    ("bsqi", ["bsqi_noisy", "bsqi_unusable"]),
+                    ("tsqi", ["tsqi_noisy", "tsqi_unusable"]), ("hf_share", ["max_hf_share"]),
+                    ("line_share", ["max_line_share"]), ("amplitude_mv", ["amplitude_range_mv"]),
+                    ("fault_fraction", ["noisy_fault_fraction", "unusable_fault_fraction"])]
+
+
+def window_histograms(ds) -> str:
+    """Each graded window index as a histogram with its thresholds and the share of windows
+    whose grade it decided (alone or with others)."""
+    import matplotlib.pyplot as plt
+    w, cfg = ds.windows, ds.manifest["config"].get("windows", {})
+    if w is None or w.empty or "decided_by" not in w:
+        return "<p>No quality windows in this dataset.</p>"
+    shown = [(c, keys) for c, keys in _WINDOW_DECIDING if c in w and w[c].notna().any()]
+    cols = 3
+    rows = -(-len(shown) // cols)
+    fig, axes = plt.subplots(rows, cols, figsize=(11, 2.6 * rows), squeeze=False)
+    for ax, (col, keys) in zip(axes.ravel(), shown):
+        v = w[col].dropna().to_numpy(dtype=float)
+        thr = [t for k in keys for t in np.atleast_1d(cfg.get(k, []))]
+        lo, hi = np.percentile(v, [0.5, 99.5])
+        lo, hi = min([lo, *thr]), max([hi, *thr])
+        ax.hist(np.clip(v, lo, hi), bins=50, color=TOL[0])
+        for t in thr:
+            ax.axvline(t, color=TOL[2], lw=1.5)
+        share = float(w.decided_by.str.split(";").apply(lambda xs: col in xs).mean())
+        ax.set_title(f"{col}: decided {share:.1%} of windows\n({', '.join(keys)})", fontsize=7)
+        ax.set_xlabel(col, fontsize=7)
+        ax.set_ylabel("windows (count)", fontsize=7)
+        ax.set_yscale("log")
+        ax.tick_params(labelsize=6)
+    for ax in axes.ravel()[len(shown):]:
+        ax.axis("off")
+    fig.tight_layout()
+    return img(png(fig), "Window quality indices with the thresholds that grade on them "
+                         "(vertical lines)")
+
+
 def excluded_examples(ds, per_reason: int = 2) -> str:
     """Excluded rows, a few per reason drawn at random (seed 0, no row twice), each on every
     lead of its record with the deciding score and threshold written on the figure."""

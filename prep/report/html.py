@@ -170,6 +170,7 @@ def write_report(run_dir: str | Path, out: str | Path | None = None) -> Path:
     parts += ["<h2>Signal quality over time</h2>", charts.quality_strips(ds),
               "<h2>Kept beats per class</h2>", charts.class_means(ds),
               "<h2>Scores that decide exclusions</h2>", charts.score_histograms(ds),
+              charts.window_histograms(ds),
               "<h2>Excluded beats in context</h2>", charts.excluded_examples(ds),
               "<h2>Rejected leads</h2>", charts.rejected_leads(ds),
               "<h2>Rhythm</h2>", charts.rhythm(ds)]
