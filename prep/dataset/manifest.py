@@ -66,6 +66,14 @@ def dataset_warnings(plan: Plan, tables: Tables, gaps: dict, axis: list[str],
     """What a user should know before training: records lacking axis leads, empty splits, and
     (where reference labels exist) validation or test splits without any abnormal beat."""
     out = []
+    none = sorted(n for n, lacks in gaps.items() if len(lacks) == len(axis))
+    if none:
+        shown = ", ".join(none[:10]) + (f" and {len(none) - 10} more" if len(none) > 10 else "")
+        out.append(f"{len(none)} of {len(plan.places)} records have none of the axis leads "
+                   f"{','.join(axis)}, so all their beats are excluded (lead_missing): {shown}; "
+                   "choose the axis with --leads (aliases such as MLII count), or run those "
+                   "records as a dataset of their own")
+        gaps = {n: v for n, v in gaps.items() if n not in none}
     if gaps:
         names = sorted(gaps)
         shown = "; ".join(f"{n} lacks {', '.join(gaps[n])}" for n in names[:10])

@@ -172,3 +172,19 @@ def test_light_commands_never_load_the_signal_stack(args, demo_run):
             "if m in sys.modules))\n")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert r.stdout.strip().splitlines()[-1] == "[]", (args, r.stdout, r.stderr)
+
+
+def test_records_without_any_axis_lead_are_named(tmp_path):
+    # two records named ECG1/ECG2 outnumber one II/V5 record: the axis is ECG1,ECG2 and the
+    # II/V5 record keeps no beat; the run says so instead of passing it over
+    d = tmp_path / "mix"
+    d.mkdir()
+    r = wfdb.rdrecord(str(DEMO / "night01"))
+    for k in (1, 2):
+        wfdb.wrsamp(f"e{k}", fs=r.fs, units=["mV"] * 2, sig_name=["ECG1", "ECG2"],
+                    p_signal=r.p_signal, fmt=["16"] * 2, write_dir=str(d))
+    for ext in ("hea", "dat", "atr"):
+        shutil.copy(DEMO / f"night02.{ext}", d / f"night02.{ext}")
+    s = run([d], tmp_path / "out")
+    assert s.axis == ["ECG1", "ECG2"]
+    assert any("have none of the axis leads" in w and "night02" in w for w in s.warnings)
