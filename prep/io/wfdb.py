@@ -5,6 +5,7 @@ Registered in :data:`prep.io.sources.FORMATS` by :data:`FORMAT`.
 """
 from __future__ import annotations
 
+from functools import lru_cache
 from pathlib import Path
 
 import numpy as np
@@ -14,6 +15,20 @@ from prep.errors import RecordError
 from prep.io._files import Format, annotation_csv, check_rate, hashed
 from prep.leads import canonical_lead, classify_channel, scale_to_mv
 from prep.model import Annotations, Record
+
+
+def parsed_header(base: Path):
+    """``wfdb.rdheader`` of a record, parsed once per process while the file is unchanged
+    (the lead peek, the length and the header check all need it; wfdb's parse takes a few ms)."""
+    hea = Path(str(base) + ".hea")
+    st = hea.stat()
+    return _parsed_header(str(base), st.st_mtime_ns, st.st_size)
+
+
+@lru_cache(maxsize=64)
+def _parsed_header(base: str, mtime_ns: int, size: int):
+    import wfdb
+    return wfdb.rdheader(base)
 
 
 def record_files(base: Path, cfg: ReadConfig) -> list[Path]:
@@ -37,8 +52,7 @@ def record_files(base: Path, cfg: ReadConfig) -> list[Path]:
 def record_length(base: Path) -> tuple[int, float]:
     """(samples, rate) from the header; (0, 0.0) for multi-segment and several-rate records,
     which are read whole."""
-    import wfdb
-    h = wfdb.rdheader(str(base))
+    h = parsed_header(base)
     several_rates = any(int(x or 1) != 1 for x in (h.samps_per_frame or []))
     if getattr(h, "n_seg", None) or several_rates:
         return 0, 0.0
@@ -48,8 +62,7 @@ def record_length(base: Path) -> tuple[int, float]:
 def header_leads(base: Path, cfg: ReadConfig) -> list[str]:
     """Canonical ECG leads from the header alone (a multi-segment header names no signal: then
     the record is read)."""
-    import wfdb
-    h = wfdb.rdheader(str(base))
+    h = parsed_header(base)
     if not h.sig_name:
         return read_wfdb(base, cfg).leads
     units = h.units or [""] * len(h.sig_name)
@@ -183,11 +196,10 @@ def _check_header(base: Path, shown: str, warnings: list[str],
     absurd rate or length, and a declared length far beyond what the files hold (then only the
     samples present are read, with a warning).
     """
-    import wfdb
 
     tokens = _header_lines(Path(str(base) + ".hea"), shown, warnings)[0].split()
     try:
-        h = wfdb.rdheader(str(base))
+        h = parsed_header(base)
     except Exception as exc:
         raise RecordError(f"the header cannot be parsed ({type(exc).__name__}: {exc}); compare it "
                           "with the WFDB header format", path=shown, stage="read") from None

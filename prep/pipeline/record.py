@@ -69,6 +69,7 @@ class _State:
     # _grade_leads
     dets: dict = None               # lead -> LeadDetections
     other: dict = None              # lead -> the second detector's R samples
+    lead_windows: list = None       # per lead: its window table
     grades: dict = None             # lead -> window grades 0/1/2
     rhythm: dict = None             # lead -> window has a rhythm finding
     one_shape: dict = None          # lead -> window's beats agree with their average
@@ -176,16 +177,17 @@ def _grade_leads(st: _State) -> None:
     res.windows.insert(0, "lead", np.repeat(np.array(rec.leads, dtype=object),
                                             [len(w) for w in tables]))
     res.windows.insert(0, "record", rec.name)
+    st.lead_windows = tables  # per lead, in lead order (names may repeat across channels)
     st.L = int(round(cfg.windows.window_s * fs))
     for j in list(st.dets):
-        recorded = res.windows.missing_fraction[res.windows.lead == rec.leads[j]].to_numpy() < 0.5
+        recorded = tables[j].missing_fraction.to_numpy() < 0.5
         share = float((st.grades[j][recorded] < 2).mean()) if recorded.any() else 0.0
         if st.dets[j].r.size == 0:
             st.usable[j] = False
             st.lead_reason[j] = "no beats found in this lead"
         elif share < cfg.quality.min_usable_fraction:
             st.usable[j] = False
-            top = main_fault(res.windows[(res.windows.lead == rec.leads[j])])
+            top = main_fault(tables[j])
             st.lead_reason[j] = f"only {share:.0%} of its windows usable; mostly {top}"
     q = cfg.quality
     res.logs.append(StageLog("lead_faults", params={"flat_ms": q.flat_ms,
@@ -218,7 +220,7 @@ def _fuse(st: _State) -> None:
     res.logs.append(lg)
     st.fused = fused
     res.leads = [lead_row(rec, j, st.usable[j], st.lead_reason[j], st.axis, st.fault[j],
-                           res.windows[res.windows.lead == rec.leads[j]])
+                           st.lead_windows[j])
                  for j in range(len(rec.leads))]
     for name, why in rec.skipped:
         res.leads.append({"record": rec.name, "lead": name, "source_name": name, "used": False,

@@ -199,3 +199,11 @@ def test_records_of_one_name_in_nested_folders_and_disjoint_lead_names(tmp_path)
     # no lead is in half of the records: the batch still runs, on the most common leads
     s = run([tmp_path], tmp_path / "out")
     assert s.n_records == 3 and s.exit_code in (0, 1) and s.warnings
+
+
+def test_two_channels_of_one_name_are_processed(tmp_path):
+    # a recorder that names every channel "ECG": each lead keeps its own window table
+    import prep
+    r = wfdb.rdrecord(str(DEMO / "night01"))
+    a = prep.process(r.p_signal.T, r.fs, leads=["ECG", "ECG"])
+    assert a.records.status[0] == "ok" and a.records.n_kept[0] > 150
