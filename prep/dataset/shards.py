@@ -219,20 +219,8 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
         return None
     protocols = fs.protocol if isinstance(fs.protocol, tuple) else (fs.protocol,)
     local = "file" in protocols
-    big = ("tensor.npy", "mask.npy")
-    blobs = {}
-    try:
-        for name in _FILES:
-            if local and name in big:  # hashed in chunks, then memory-mapped: bounded memory
-                if verify and _sha_stream(fs, f"{d}/{name}") != commit["files"].get(name):
-                    return None
-                continue
-            with fs.open(f"{d}/{name}", "rb") as fh:
-                blobs[name] = fh.read()
-    except (FileNotFoundError, OSError):
-        return None
-    if verify and any(hashlib.sha256(v).hexdigest() != commit["files"].get(k)
-                      for k, v in blobs.items()):
+    blobs = _verified_blobs(fs, d, commit, local, verify)
+    if blobs is None:
         return None
     meta = json.loads(blobs["meta.json"])
     res = RecordResult(meta["name"], meta["status"], meta["error"], meta["fs"], meta["duration_s"],
@@ -265,6 +253,27 @@ def read_shard(root: str, record: str, config_hash: str, inputs: list | None,
         res.tensor = res.mask = res.beats = None
         res.store = None
     return res
+
+
+def _verified_blobs(fs, d: str, commit: dict, local: bool, verify: bool) -> dict | None:
+    """The shard's small files as bytes, each checked against its commit digest (the local
+    tensor files are hashed in chunks and left on disk); None when one is missing or differs."""
+    big = ("tensor.npy", "mask.npy")
+    blobs = {}
+    try:
+        for name in _FILES:
+            if local and name in big:  # hashed in chunks, then memory-mapped: bounded memory
+                if verify and _sha_stream(fs, f"{d}/{name}") != commit["files"].get(name):
+                    return None
+                continue
+            with fs.open(f"{d}/{name}", "rb") as fh:
+                blobs[name] = fh.read()
+    except (FileNotFoundError, OSError):
+        return None
+    if verify and any(hashlib.sha256(v).hexdigest() != commit["files"].get(k)
+                      for k, v in blobs.items()):
+        return None
+    return blobs
 
 
 def _sha_stream(fs, path: str) -> str:

@@ -98,8 +98,7 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     import wfdb
 
     base = Path(base)
-    hea = Path(str(base) + ".hea")
-    shown = str(hea)
+    shown = str(base) + ".hea"
     warnings: list[str] = []
     spf: list[int] = []
     safe = _check_header(base, shown, warnings, spf)
@@ -124,19 +123,9 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
     sig = rec.p_signal
     if sig is None or sig.size == 0:
         raise RecordError("the record holds no samples", path=shown, stage="read")
-    files = {hea}
-    for fn in (rec.file_name or []):
-        files.add(base.parent / fn)
     names = [str(n) for n in (rec.sig_name or [f"ch{i}" for i in range(sig.shape[1])])]
     units = [str(u or "") for u in (rec.units or [""] * len(names))]
-    keep, skipped = [], []
-    for i, (n, u) in enumerate(zip(names, units)):
-        ok, why = classify_channel(n, u)
-        (keep.append(i) if ok else skipped.append((n, why)))
-    if not keep:
-        raise RecordError("no ECG channel (all channels skipped: " +
-                          "; ".join(w for _, w in skipped) + "); choose records with ECG leads",
-                          path=shown, stage="read")
+    keep, skipped = _ecg_channels(names, units, shown)
     data = np.ascontiguousarray(sig[:, keep].T, dtype=np.float64)
     data *= np.array([scale_to_mv(units[i]) for i in keep])[:, None]
     ann = _read_wfdb_annotations(base, cfg.annotation_extension, data.shape[1], warnings,
@@ -149,6 +138,19 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
                   lead_names=[names[i] for i in keep], leads=[canonical_lead(names[i]) for i in keep],
                   units=["mV"] * len(keep), inputs=inputs, skipped=skipped, annotations=ann,
                   comments=list(rec.comments or []), path=shown, channels=keep)
+
+
+def _ecg_channels(names: list[str], units: list[str], shown: str):
+    """Indices of the ECG channels, and (name, why) of the others; an error when none is ECG."""
+    keep, skipped = [], []
+    for i, (n, u) in enumerate(zip(names, units)):
+        ok, why = classify_channel(n, u)
+        (keep.append(i) if ok else skipped.append((n, why)))
+    if not keep:
+        raise RecordError("no ECG channel (all channels skipped: " +
+                          "; ".join(w for _, w in skipped) + "); choose records with ECG leads",
+                          path=shown, stage="read")
+    return keep, skipped
 
 
 def _read_multirate(base: Path, spf: list[int], cfg: ReadConfig, name, shown, warnings, inputs):
