@@ -196,6 +196,11 @@ def lead_axis(found: list[Source], cfg: Config) -> tuple[list[str], dict[str, li
     present = sorted({lead for x in known for lead in x}, key=str.lower)
     if cfg.leads.select:
         axis = resolve_axis(cfg.leads.select)
+        twice = sorted({a for a in axis if axis.count(a) > 1})
+        if twice:
+            raise ConfigError(f"--leads / leads.select {','.join(cfg.leads.select)}: "
+                              f"{', '.join(twice)} is named twice (aliases such as MLII and II "
+                              "are one lead); give each lead once")
         absent = [a for a in axis if all(match_lead(a, x) is None for x in known)]
         if absent:
             hints = [f"{a} (did you mean {nearest_lead(a, present)}?)" if nearest_lead(a, present)

@@ -188,3 +188,9 @@ def test_records_without_any_axis_lead_are_named(tmp_path):
     s = run([d], tmp_path / "out")
     assert s.axis == ["ECG1", "ECG2"]
     assert any("have none of the axis leads" in w and "night02" in w for w in s.warnings)
+
+
+def test_a_lead_named_twice_through_an_alias_is_a_usage_error(tmp_path):
+    with pytest.raises(ConfigError, match="II is named twice"):
+        run([DEMO / "night01.hea"], tmp_path / "o",
+            config=Config().replace(leads={"select": ["MLII", "II"]}))
