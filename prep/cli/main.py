@@ -83,20 +83,22 @@ def run(inputs: List[str] = typer.Argument(..., metavar="INPUTS", help="WFDB hea
 
 
 def _config_from_options(config, leads, train_classes, patients, seed):
-    """The configuration file (or the defaults) with the command-line options on top."""
+    """The configuration file (or the defaults) with the command-line options on top; a bad
+    value is reported under the option's name."""
     from prep.config import Config
 
     def items(text):
         return [x.strip() for x in text.split(",") if x.strip()]
     cfg = Config.from_toml(config) if config else Config()
     if leads:
-        cfg = cfg.replace(leads={"select": items(leads)})
+        cfg = cfg.replace("option --leads", leads={"select": items(leads)})
     if train_classes:
-        cfg = cfg.replace(labels={"train_classes": items(train_classes)})
+        cfg = cfg.replace("option --train-classes",
+                          labels={"train_classes": items(train_classes)})
     if patients:
-        cfg = cfg.replace(split={"patient_map": str(patients)})
+        cfg = cfg.replace("option --patients", split={"patient_map": str(patients)})
     if seed is not None:
-        cfg = cfg.replace(split={"seed": seed})
+        cfg = cfg.replace("option --seed", split={"seed": seed})
     return cfg
 
 

@@ -129,8 +129,9 @@ class Config:
                               "'beatmill config'") from None
         return cls.from_dict(data, origin=f"config file {path}")
 
-    def replace(self, **changes: dict[str, Any]) -> "Config":
-        """Return a validated copy with some keys of some sections changed.
+    def replace(self, origin: str = "Config.replace", **changes: dict[str, Any]) -> "Config":
+        """Return a validated copy with some keys of some sections changed; ``origin`` names
+        where the change came from in messages (the command line passes its option).
 
         ``cfg.replace(bandpass={"high_hz": 35.0})``
         """
@@ -141,7 +142,7 @@ class Config:
             if not isinstance(values, dict):
                 raise ConfigError(f"replace({section}=...) takes a dict of keys to change")
             data[section] = {**data[section], **values}
-        return Config.from_dict(data, origin="Config.replace")
+        return Config.from_dict(data, origin=origin)
 
     # ---- validation ---------------------------------------------------------------------
     def problems(self, *, origin: str = "config") -> list[str]:
