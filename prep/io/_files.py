@@ -69,4 +69,3 @@ class Format:
     record_path: Callable[[Path], Path] = lambda p: p
     record_name: Callable[[Path], str] = lambda p: p.stem
     not_records: Callable[[list[Path]], set[Path]] = lambda paths: set()
-    exact_case: bool = False  # True where the reader needs the suffix exactly as written

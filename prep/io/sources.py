@@ -51,13 +51,7 @@ def _scan(folder: Path, problems: list[str]) -> list[Path]:
                         "are left out")
     hits = []
     for root, _dirs, files in os.walk(folder, onerror=unreadable):
-        for f in files:
-            fmt = _format_of(Path(f))
-            if fmt and fmt.exact_case and Path(f).suffix not in fmt.suffixes:
-                problems.append(f"{Path(root) / f}: the {fmt.kind} reader needs the suffix "
-                                f"{fmt.suffixes[0]} in lower case; rename the record's files")
-            elif fmt:
-                hits.append(Path(root) / f)
+        hits += [Path(root) / f for f in files if _format_of(Path(f))]
     return sorted(hits)
 
 
@@ -83,8 +77,7 @@ def find_sources(items: list[str | Path], *, notes: list[str] | None = None,
                 kinds = ", ".join(s for f in FORMATS.values() for s in f.suffixes)
                 problems.append(f"folder {p} holds no record file ({kinds})")
             found += [(_format_of(h), h) for h in hits]
-        elif p.is_file() and _format_of(p) and not (_format_of(p).exact_case and
-                                                    p.suffix not in _format_of(p).suffixes):
+        elif p.is_file() and _format_of(p):
             found.append((_format_of(p), p))
         else:  # a record named without its suffix (a WFDB base name)
             named = [Path(str(p) + s) for s in _BY_SUFFIX if Path(str(p) + s).is_file()]

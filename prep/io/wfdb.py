@@ -31,9 +31,58 @@ def _parsed_header(base: str, mtime_ns: int, size: int):
     return wfdb.rdheader(base)
 
 
+def lower_case_view(base: Path) -> Path:
+    """The record as the wfdb library can open it (it opens ``<base>.hea``): ``base`` itself,
+    or for a record written with upper- or mixed-case suffixes (``REC.HEA``, ``REC.DAT``), a
+    folder of links (made once per process, removed at exit) where its files also answer to
+    their lower-case suffixes."""
+    base = Path(base)
+    if Path(str(base) + ".hea").exists():
+        return base
+    return _view(str(base))
+
+
+@lru_cache(maxsize=256)
+def _view(base: str) -> Path:
+    import atexit
+    import shutil
+    import tempfile
+    b = Path(base)
+    try:
+        files = [f for f in b.parent.iterdir()
+                 if f.is_file() and f.name.lower().startswith(b.name.lower() + ".")]
+    except OSError:
+        return b
+    head = [f for f in files if f.suffix.lower() == ".hea"]
+    if not head:
+        return b
+    named = [b.parent / ln.split()[0] for ln in head[0].read_bytes().decode("latin-1").splitlines()[1:]
+             if ln.strip() and not ln.startswith("#") and ln.split()[0] != "~"]
+    d = Path(tempfile.mkdtemp(prefix="beatmill-case-"))
+    atexit.register(shutil.rmtree, d, True)
+    for f in {*files, *(f for f in named if f.is_file())}:
+        for name in {f.name, f.stem + f.suffix.lower(), b.name + f.suffix.lower()}:
+            if not (d / name).exists():
+                (d / name).symlink_to(f.resolve())
+    return d / b.name
+
+
+def original_header(base: Path) -> str:
+    """The header file as the user named it (``REC.HEA`` where it was written so)."""
+    plain = Path(str(base) + ".hea")
+    if plain.exists():
+        return str(plain)
+    hits = [f for f in base.parent.glob(base.name + ".*") if f.suffix.lower() == ".hea"]
+    return str(hits[0]) if hits else str(plain)
+
+
 def record_files(base: Path, cfg: ReadConfig) -> list[Path]:
     """Every file a WFDB record is read from, without decoding it: the header, the signal files
-    it names, the annotation file and an annotation CSV, those present, sorted."""
+    it names, the annotation file and an annotation CSV, those present, sorted (links of a
+    case view resolved to the files they stand for)."""
+    view = lower_case_view(base)
+    if view != Path(base):
+        return sorted({f.resolve() for f in record_files(view, cfg)})
     files = {Path(str(base) + ".hea")}
     try:
         text = Path(str(base) + ".hea").read_bytes().decode("latin-1")
@@ -52,7 +101,7 @@ def record_files(base: Path, cfg: ReadConfig) -> list[Path]:
 def record_length(base: Path) -> tuple[int, float]:
     """(samples, rate) from the header; (0, 0.0) for multi-segment and several-rate records,
     which are read whole."""
-    h = parsed_header(base)
+    h = parsed_header(lower_case_view(base))
     several_rates = any(int(x or 1) != 1 for x in (h.samps_per_frame or []))
     if getattr(h, "n_seg", None) or several_rates:
         return 0, 0.0
@@ -62,6 +111,7 @@ def record_length(base: Path) -> tuple[int, float]:
 def header_leads(base: Path, cfg: ReadConfig) -> list[str]:
     """Canonical ECG leads from the header alone (a multi-segment header names no signal: then
     the record is read)."""
+    base = lower_case_view(base)
     h = parsed_header(base)
     if not h.sig_name:
         return read_wfdb(base, cfg).leads
@@ -347,10 +397,20 @@ def _read_wfdb_annotations(base: Path, ext: str, n_samples: int, warnings: list[
 def _read(base: Path, cfg: ReadConfig, *, name, inputs, sampfrom: int = 0,
           sampto: int | None = None) -> Record:
     ranged = {"sampfrom": sampfrom, "sampto": sampto} if (sampfrom or sampto) else {}
-    return read_wfdb(base, cfg, name=name, inputs=inputs, **ranged)
+    view = lower_case_view(base)
+    if view == Path(base):
+        return read_wfdb(base, cfg, name=name, inputs=inputs, **ranged)
+    # a case view: messages and provenance name the user's files, not the links
+    shown = original_header(Path(base))
+    try:
+        rec = read_wfdb(view, cfg, name=name or Path(base).name,
+                        inputs=inputs or hashed(record_files(base, cfg)), **ranged)
+    except RecordError as exc:
+        raise RecordError(str(exc).replace(str(view) + ".hea", shown), stage=None) from None
+    rec.path = shown
+    return rec
 
 
 FORMAT = Format(kind="wfdb", suffixes=(".hea",), read=_read, files=record_files,
                 length=record_length, leads=header_leads, record_path=lambda p: p.with_suffix(""),
-                record_name=lambda b: b.name, not_records=segment_headers,
-                exact_case=True)  # wfdb opens "<base>.hea"
+                record_name=lambda b: b.name, not_records=segment_headers)

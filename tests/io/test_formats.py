@@ -161,11 +161,22 @@ def test_every_format_module_is_registered_and_scans_agree_with_explicit_paths(t
     assert not problems and not notes
 
 
-def test_upper_case_wfdb_header_is_named_not_skipped(tmp_path):
-    for name in ("night01.dat", "night01.atr"):
-        shutil.copy(DEMO / name, tmp_path / name)
-    shutil.copy(DEMO / "night01.hea", tmp_path / "night01.HEA")
-    from prep.io.sources import find_sources
+def test_upper_case_wfdb_files_are_read(tmp_path):
+    # PhysioNet's own files are lower case, but copies from some systems are not
+    for ext in ("hea", "dat", "atr"):
+        shutil.copy(DEMO / f"night01.{ext}", tmp_path / f"NIGHT01.{ext.upper()}")
+    h = (tmp_path / "NIGHT01.HEA").read_text().replace("night01", "NIGHT01").replace(
+        "NIGHT01.dat", "NIGHT01.DAT")
+    (tmp_path / "NIGHT01.HEA").write_text(h)
+    from prep.config import Config
+    from prep.io.sources import find_sources, read_source, record_length, source_inputs
     notes = []
     found, problems = find_sources([tmp_path], notes=notes)
-    assert not found and "lower case" in notes[0] and "night01.HEA" in notes[0]
+    assert [s.name for s in found] == ["NIGHT01"] and not problems and not notes
+    rec = read_source(found[0], Config().read)
+    ref = read_wfdb(DEMO / "night01")
+    np.testing.assert_array_equal(rec.signals, ref.signals)
+    assert rec.annotations is not None and len(rec.annotations.sample) == len(ref.annotations.sample)
+    assert rec.path.endswith("NIGHT01.HEA") and record_length(found[0])[0] == ref.n_samples
+    assert {n for n, _ in source_inputs(found[0], Config().read)} == {"NIGHT01.HEA", "NIGHT01.DAT",
+                                                                       "NIGHT01.ATR"}
