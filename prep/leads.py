@@ -75,10 +75,7 @@ def default_axis(record_leads: list[list[str]], min_share: float = 0.5) -> list[
     """
     if not record_leads:
         return []
-    count: dict[str, int] = {}
-    for leads in record_leads:
-        for lead in set(leads):
-            count[lead] = count.get(lead, 0) + 1
+    count = lead_counts(record_leads)
     common = {lead for lead, c in count.items() if c >= min_share * len(record_leads)}
     if set(STANDARD_12) <= common:
         return list(STANDARD_12)
@@ -87,16 +84,26 @@ def default_axis(record_leads: list[list[str]], min_share: float = 0.5) -> list[
     return std + rest
 
 
-def nearest_lead(name: str, known: list[str]) -> str | None:
-    """The known lead name closest to a mistyped one (None when nothing is close).
+def nearest_lead(name: str, known: list[str], cutoff: float = 0.5) -> str | None:
+    """The known name closest to a mistyped one, case-insensitively (None when nothing is
+    within ``cutoff``, difflib's similarity ratio). Used for leads and for class names.
 
     >>> nearest_lead("V55", ["II", "V5", "V1"])
     'V5'
     """
     import difflib
     by_lower = {k.lower(): k for k in known}
-    hit = difflib.get_close_matches(name.lower(), list(by_lower), n=1, cutoff=0.5)
+    hit = difflib.get_close_matches(name.lower(), list(by_lower), n=1, cutoff=cutoff)
     return by_lower[hit[0]] if hit else None
+
+
+def lead_counts(record_leads: list[list[str]]) -> dict[str, int]:
+    """In how many records each lead appears (a record counts once per lead)."""
+    count: dict[str, int] = {}
+    for leads in record_leads:
+        for lead in set(leads):
+            count[lead] = count.get(lead, 0) + 1
+    return count
 
 
 def resolve_axis(select: list[str]) -> list[str]:

@@ -47,9 +47,10 @@ def check_dataset(run_dir: str | Path) -> list[str]:
         return [f"{d}: cannot load the dataset files ({type(exc).__name__}: {exc})"]
     n = beats.shape[0] if beats.ndim == 3 else -1
     problems += _check_arrays(manifest, beats, mask, center, scale)
+    missing = [c for c in BEAT_COLUMNS if c not in table.columns]
+    if missing:  # the checks below read these columns
+        return problems + [f"beats.parquet: missing columns {missing}"]
     problems += _check_beat_table(table, records, n)
-    if problems and "missing columns" in problems[-1]:
-        return problems
     problems += _check_splits_and_labels(table, records, manifest, n)
     if n > 0 and not np.isfinite(np.asarray(beats[: min(n, 100000)])).all():
         problems.append("beats.npy: holds non-finite values")
@@ -98,9 +99,6 @@ def _check_arrays(manifest: dict, beats, mask, center, scale) -> list[str]:
 def _check_beat_table(table, records, n: int) -> list[str]:
     """Beat rows against the tensor: included rows are its rows, excluded ones say why."""
     problems: list[str] = []
-    missing = [c for c in BEAT_COLUMNS if c not in table.columns]
-    if missing:
-        return [f"beats.parquet: missing columns {missing}"]
     inc = table["included"].to_numpy(bool)
     ti = table["tensor_index"].to_numpy()
     if int(inc.sum()) != n:

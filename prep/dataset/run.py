@@ -21,7 +21,7 @@ from prep.dataset.shards import read_shard, write_shard
 from prep.dataset.split import load_patient_map
 from prep.errors import ConfigError
 from prep.io.sources import Source, find_sources, source_inputs, source_leads
-from prep.leads import default_axis, match_lead, nearest_lead, resolve_axis
+from prep.leads import default_axis, lead_counts, match_lead, nearest_lead, resolve_axis
 from prep.pipeline.result import RecordResult
 from prep.stages.labels import AAMI_CLASSES, UNLABELED, load_mapping
 
@@ -218,12 +218,8 @@ def _most_common(known: list[list[str]]) -> list[str]:
     """When no lead is in half of the records (names that disagree): the most common leads, so
     that one record's naming never stops a batch; the records lacking them are named in the
     manifest's warnings."""
-    count: dict[str, int] = {}
-    for leads in known:
-        for lead in set(leads):
-            count[lead] = count.get(lead, 0) + 1
-    top = max(count.values())
-    axis = default_axis([[lead for lead, c in count.items() if c == top]])
+    top = max(lead_counts(known).values())
+    axis = default_axis(known, min_share=top / len(known))
     log.warning("no ECG lead is in at least half of the records; the lead axis is the most "
                 "common, %s (choose it with --leads)", ",".join(axis))
     return axis
@@ -241,9 +237,8 @@ def check_train_classes(cfg: Config, mapping: dict) -> Config:
         hit = by_lower.get(c.strip().lower())
         (picked.append(hit) if hit else bad.append(c))
     if bad:
-        import difflib
-        hints = [f"{b!r}" + (f" (did you mean {m[0]}?)" if (m := difflib.get_close_matches(
-            b, classes, n=1, cutoff=0.3)) else "") for b in bad]
+        hints = [f"{b!r}" + (f" (did you mean {m}?)" if (m := nearest_lead(b, classes, 0.3))
+                             else "") for b in bad]
         raise ConfigError(f"--train-classes / labels.train_classes: {', '.join(hints)} is not a "
                           f"class in use; the classes are {', '.join(classes)}")
     return cfg.replace(labels={"train_classes": picked})

@@ -43,11 +43,11 @@ def _format_of(p: Path) -> Format | None:
     return _BY_SUFFIX.get(p.suffix.lower())
 
 
-def _scan(folder: Path, problems: list[str]) -> list[Path]:
+def _scan(folder: Path, notes: list[str]) -> list[Path]:
     """Files of every registered suffix under ``folder`` (any case), not following links to
     folders (a link loop cannot trap the scan); unreadable subfolders are reported."""
     def unreadable(err: OSError) -> None:
-        problems.append(f"folder {err.filename} cannot be read ({err.strerror}); its records "
+        notes.append(f"folder {err.filename} cannot be read ({err.strerror}); its records "
                         "are left out")
     hits = []
     for root, _dirs, files in os.walk(folder, onerror=unreadable):

@@ -38,19 +38,15 @@ def survey(inputs, cfg: Config, workers: int | None = None,
     found, problems = find_sources(list(inputs))
     if problems or not found:
         raise ConfigError(problems or ["no input records given"])
-    from prep.dataset.execute import n_workers
+    from prep.dataset.execute import n_workers, start_pool
     n = min(n_workers(workers), len(found))
     rows, failed = [], []
+    tasks = [(src, cfg) for src in found]
     if n > 1:
-        import multiprocessing as mp
-        from concurrent.futures import ProcessPoolExecutor
-        method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
-        with ProcessPoolExecutor(n, mp_context=mp.get_context(method)) as pool:
-            done = pool.map(_survey_one, [(src, cfg) for src in found])
-            results = list(_with_progress(done, found, progress))
+        with start_pool(n) as pool:
+            results = list(_with_progress(pool.map(_survey_one, tasks), found, progress))
     else:
-        results = list(_with_progress(map(_survey_one, [(src, cfg) for src in found]), found,
-                                      progress))
+        results = list(_with_progress(map(_survey_one, tasks), found, progress))
     for name, lead_rows, error in results:
         if error:
             failed.append((name, error))
