@@ -25,9 +25,9 @@ def n_workers(workers: int | None) -> int:
 
 
 def _warm() -> None:
-    """Pool initializer: import the second detector's library (about 1 s) while the parent is
-    still hashing inputs, instead of on each worker's first record."""
-    import neurokit2  # noqa: F401
+    """Pool initializer: import the signal stack (scipy.signal alone takes about 1 s) while the
+    parent is still hashing inputs, instead of on each worker's first record."""
+    import prep.pipeline.chunks  # noqa: F401
 
 
 def start_pool(n: int):

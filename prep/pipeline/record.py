@@ -29,7 +29,7 @@ from prep.leads import match_lead
 from prep.model import Record, StageLog
 from prep.pipeline.result import RecordResult
 from prep.pipeline.rr import rr_to_beats
-from prep.pipeline.signals import fill_gaps, second_detector
+from prep.pipeline.signals import SECOND_DETECTOR, fill_gaps, second_detector
 from prep.pipeline.tabulate import lead_row, tabulate
 from prep.quality.faults import (copied_leads, fault_reason, lead_faults, usable_of_recorded,
                                  window_fraction)
@@ -197,8 +197,7 @@ def _grade_leads(st: _State) -> None:
                                       for j in range(len(rec.leads))}))
     res.logs.append(StageLog("windows", params={k: getattr(cfg.windows, k)
                                                 for k in cfg.windows.__dataclass_fields__},
-                             derived={"window_samples": st.L, "second_detector":
-                                      "neurokit2.ecg_findpeaks(method='neurokit')"},
+                             derived={"window_samples": st.L, "second_detector": SECOND_DETECTOR},
                              counts={g: int((res.windows.grade == g).sum())
                                      for g in ("good", "noisy", "unusable")}))
 
