@@ -47,7 +47,7 @@ def gradient_peaks(x: np.ndarray, fs: int, smooth_s: float = 0.1, average_s: flo
     simulations (tests/pipeline/test_signals.py). An input too short for the averaging window
     gives no peak (the original raises).
     """
-    from scipy import ndimage, signal
+    from scipy import ndimage
 
     x = np.asarray(x, dtype=np.float64)
     k_smooth, k_avg = int(np.rint(smooth_s * fs)), int(np.rint(average_s * fs))
@@ -68,11 +68,55 @@ def gradient_peaks(x: np.ndarray, fs: int, smooth_s: float = 0.1, average_s: flo
     keep = (ends - starts) >= np.mean(ends - starts) * min_len_weight
     min_delay = int(np.rint(fs * min_delay_s))
     peaks, last = [], 0
-    for b, e in zip(starts[keep].tolist(), ends[keep].tolist()):
-        top, props = signal.find_peaks(x[b:e], prominence=(None, None))
-        if top.size:
-            peak = b + int(top[np.argmax(props["prominences"])])
-            if peak - last > min_delay:
-                peaks.append(peak)
-                last = peak
+    for peak in _most_prominent(x, starts[keep], ends[keep]).tolist():
+        if peak >= 0 and peak - last > min_delay:
+            peaks.append(peak)
+            last = peak
     return np.asarray(peaks, dtype=np.int64)
+
+
+def _most_prominent(x: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
+    """For each stretch ``x[b:e]``, the index (in ``x``) of its local maximum of largest
+    prominence, the first of equals; -1 where the stretch has no local maximum. The same as
+    ``scipy.signal.find_peaks(x[b:e], prominence=(None, None))`` per stretch, for all stretches
+    at once: stretches padded into one array, every local maximum's prominence from the lowest
+    sample on each side before a higher one or the stretch's edge. A stretch holding two equal
+    neighbouring samples (a possible flat peak) goes to find_peaks itself."""
+    out = np.full(starts.size, -1, np.int64)
+    if starts.size == 0:
+        return out
+    lengths = ends - starts
+    width = int(lengths.max())
+    col = np.arange(width)
+    inside = col[None, :] < lengths[:, None]
+    seg = np.where(inside, x[np.minimum(starts[:, None] + col[None, :], x.size - 1)], np.nan)
+    flat = (seg[:, 1:] == seg[:, :-1]).any(axis=1)
+    # a strict local maximum with both neighbours inside the stretch
+    top = np.zeros(seg.shape, bool)
+    top[:, 1:-1] = (seg[:, 1:-1] > seg[:, :-2]) & (seg[:, 1:-1] > seg[:, 2:])
+    top[flat] = False
+    row, at = np.nonzero(top)
+    if row.size:
+        s = seg[row]                                    # one row per candidate peak
+        h = s[np.arange(row.size), at][:, None]
+        higher = s > h                                  # NaN padding compares False
+        left = np.where(higher & (col[None, :] < at[:, None]), col[None, :], -1).max(axis=1)
+        right = np.where(higher & (col[None, :] > at[:, None]), col[None, :],
+                         lengths[row][:, None]).min(axis=1)
+        span_l = (col[None, :] > left[:, None]) & (col[None, :] <= at[:, None])
+        span_r = (col[None, :] >= at[:, None]) & (col[None, :] < right[:, None])
+        low_l = np.where(span_l, s, np.inf).min(axis=1)
+        low_r = np.where(span_r, s, np.inf).min(axis=1)
+        prom = h[:, 0] - np.maximum(low_l, low_r)
+        # first candidate of the largest prominence in each stretch (candidates are in order)
+        order = np.lexsort((at, -prom, row))
+        first = np.r_[True, row[order][1:] != row[order][:-1]]
+        best = order[first]
+        out[row[best]] = starts[row[best]] + at[best]
+    from scipy import signal
+    for i in np.flatnonzero(flat):
+        b, e = int(starts[i]), int(ends[i])
+        t, props = signal.find_peaks(x[b:e], prominence=(None, None))
+        if t.size:
+            out[i] = b + int(t[np.argmax(props["prominences"])])
+    return out

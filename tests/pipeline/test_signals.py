@@ -51,3 +51,22 @@ def test_degenerate_inputs_give_no_peak():
     x = np.zeros(5000)
     x[2500] = 1.0                                             # one spike: one peak
     np.testing.assert_array_equal(gradient_peaks(x, 250), _peer(x, 250))
+
+
+def test_most_prominent_peak_per_stretch_is_scipys():
+    # scipy.signal.find_peaks(prominence=...) per stretch is the reference (the registry
+    # library); integer-valued walks make flat peaks and equal prominences on purpose
+    from scipy import signal
+
+    from prep.pipeline.signals import _most_prominent
+    rng = np.random.default_rng(1)
+    for trial in range(100):
+        x = np.cumsum(rng.normal(size=2000))
+        if trial % 2:
+            x = np.round(x * (1 + trial % 5))
+        starts = np.sort(rng.choice(1940, 40, replace=False))
+        ends = starts + rng.integers(1, 60, 40)
+        got = _most_prominent(x, starts, ends)
+        for i, (b, e) in enumerate(zip(starts, ends)):
+            t, p = signal.find_peaks(x[b:e], prominence=(None, None))
+            assert got[i] == (b + t[np.argmax(p["prominences"])] if t.size else -1)
