@@ -21,7 +21,6 @@ from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
-import pandas as pd
 
 from prep.config import Config
 from prep.errors import BeatmillError, RecordError
@@ -35,7 +34,7 @@ from prep.quality.faults import (copied_leads, fault_reason, lead_faults, usable
                                  window_fraction)
 from prep.quality.rules import BeatEvidence, decide, quality_log
 from prep.quality.scores import cut_beat_scores, detector_agreement, high_freq, qrs_match
-from prep.quality.windows import grade_codes, lead_windows, main_fault
+from prep.quality.windows import grade_codes, join_columns, main_fault, window_columns
 from prep.schema import empty_beats
 from prep.stages.bandpass import bandpass
 from prep.stages.baseline import remove_baseline
@@ -69,7 +68,7 @@ class _State:
     # _grade_leads
     dets: dict = None               # lead -> LeadDetections
     other: dict = None              # lead -> the second detector's R samples
-    lead_windows: list = None       # per lead: its window table
+    lead_windows: list = None       # per lead: its window columns (window_columns)
     grades: dict = None             # lead -> window grades 0/1/2
     rhythm: dict = None             # lead -> window has a rhythm finding
     one_shape: dict = None          # lead -> window's beats agree with their average
@@ -166,21 +165,21 @@ def _grade_leads(st: _State) -> None:
     empty = np.zeros(0, np.int64)
     tables, st.grades, st.rhythm, st.one_shape = [], {}, {}, {}
     for j in range(len(rec.leads)):
-        w = lead_windows(st.notched[j], st.y[j], st.masks[j], fs,
-                         st.dets[j].r if j in st.dets else empty, st.other.get(j, empty),
-                         st.mains, cfg.windows, grade=cfg.windows.enabled)
+        w = window_columns(st.notched[j], st.y[j], st.masks[j], fs,
+                           st.dets[j].r if j in st.dets else empty, st.other.get(j, empty),
+                           st.mains, cfg.windows, grade=cfg.windows.enabled)
         st.grades[j] = grade_codes(w["grade"])
-        st.rhythm[j] = (w["rhythm_findings"] != "").to_numpy()
-        st.one_shape[j] = (w["tsqi_average"].fillna(-1) >= cfg.windows.tsqi_noisy).to_numpy()
+        st.rhythm[j] = np.asarray(w["rhythm_findings"], dtype=object) != ""
+        st.one_shape[j] = np.nan_to_num(w["tsqi_average"], nan=-1) >= cfg.windows.tsqi_noisy
         tables.append(w)
-    res.windows = pd.concat(tables, ignore_index=True)
+    res.windows = join_columns(tables)
     res.windows.insert(0, "lead", np.repeat(np.array(rec.leads, dtype=object),
-                                            [len(w) for w in tables]))
+                                            [len(w["start"]) for w in tables]))
     res.windows.insert(0, "record", rec.name)
     st.lead_windows = tables  # per lead, in lead order (names may repeat across channels)
     st.L = int(round(cfg.windows.window_s * fs))
     for j in list(st.dets):
-        recorded = tables[j].missing_fraction.to_numpy() < 0.5
+        recorded = np.asarray(tables[j]["missing_fraction"]) < 0.5
         share = float((st.grades[j][recorded] < 2).mean()) if recorded.any() else 0.0
         if st.dets[j].r.size == 0:
             st.usable[j] = False

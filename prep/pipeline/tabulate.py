@@ -72,12 +72,14 @@ def _labels(st, mapping: dict[str, str] | None) -> np.ndarray:
 
 
 def lead_row(rec: Record, j: int, used: bool, reason: str, axis: list[str], fault: dict,
-              w: pd.DataFrame) -> dict:
-    counts = w["grade"].value_counts()
+              w: dict) -> dict:
+    """One row of the lead table; ``w``: the lead's window columns."""
+    grade = np.asarray(w["grade"], dtype=object)
+    counts = {g: int((grade == g).sum()) for g in ("good", "noisy", "unusable")}
     return {"record": rec.name, "lead": rec.leads[j], "source_name": rec.lead_names[j],
             "used": bool(used), "reason": reason,
             "in_axis": match_lead(rec.leads[j], axis) is not None, **fault,
-            "windows_good": int(counts.get("good", 0)), "windows_noisy": int(counts.get("noisy", 0)),
-            "windows_unusable": int(counts.get("unusable", 0)),
-            "usable_share": float((w["grade"] != "unusable").mean()) if len(w) else 0.0,
+            "windows_good": counts["good"], "windows_noisy": counts["noisy"],
+            "windows_unusable": counts["unusable"],
+            "usable_share": float((grade != "unusable").mean()) if grade.size else 0.0,
             "main_fault": main_fault(w)}

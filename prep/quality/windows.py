@@ -60,17 +60,27 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
     >>> w.grade.tolist()
     ['good', 'good', 'good']
     """
+    return pd.DataFrame(window_columns(notched, filtered, bad, fs, ours, other, mains_hz, cfg,
+                                       grade))
+
+
+def window_columns(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.ndarray],
+                   fs: float, ours: np.ndarray, other: np.ndarray, mains_hz: float | None,
+                   cfg: WindowsConfig = WindowsConfig(), grade: bool = True) -> dict:
+    """:func:`lead_windows` as a mapping of column name -> values (numpy arrays, lists for the
+    text columns), in the table's column order: the pipeline joins the leads' columns into one
+    table per record instead of building a table per lead."""
     fr = Frames(filtered, notched, fs, int(round(cfg.window_s * fs)), ours, other, mains_hz)
     out = {"start": fr.starts, "end": fr.starts + fr.count.astype(np.int64)}
     out.update(fault_shares(bad, fr.starts, fr.count))
     n = fr.n_win
     if not grade:
         out.update({c: np.full(n, np.nan) for c in INDEX_COLUMNS if c not in out})
-        return _table(out, ["good"] * n, [""] * n, [""] * n)
+        return _columns(out, ["good"] * n, [""] * n, [""] * n)
     for index in INDICES:
         out.update(index(fr))
     grades, why = grade_windows(out, cfg)
-    return _table(out, grades, why, rhythm_findings(out, cfg))
+    return _columns(out, grades, why, rhythm_findings(out, cfg))
 
 
 def fault_shares(bad: dict[str, np.ndarray], starts: np.ndarray, count: np.ndarray) -> dict:
@@ -84,11 +94,25 @@ def fault_shares(bad: dict[str, np.ndarray], starts: np.ndarray, count: np.ndarr
     return out
 
 
-def _table(out: dict, grades, why, rhythm) -> pd.DataFrame:
-    """The window table: start, end, the verdicts, then the indices (one DataFrame, built once)."""
+def _columns(out: dict, grades, why, rhythm) -> dict:
+    """The window table's columns: start, end, the verdicts, then the indices."""
     cols = {"start": out["start"], "end": out["end"], "grade": grades, "decided_by": why,
             "rhythm_findings": rhythm}
     cols.update((k, v) for k, v in out.items() if k not in ("start", "end"))
+    return cols
+
+
+def join_columns(parts: list[dict]) -> pd.DataFrame:
+    """One table from several leads' :func:`window_columns`, in order (as ``pd.concat`` of their
+    tables with a fresh index)."""
+    if not parts:
+        return pd.DataFrame()
+    cols = {}
+    for k, v in parts[0].items():
+        if isinstance(v, list):
+            cols[k] = [x for p in parts for x in p[k]]
+        else:
+            cols[k] = np.concatenate([np.asarray(p[k]) for p in parts])
     return pd.DataFrame(cols)
 
 
@@ -131,16 +155,21 @@ _FAULT_ORDER = ["fault_fraction", "amplitude_mv", "bsqi", "tsqi", "ksqi", "bassq
                 "hf_share", "line_share", "hr_bpm", "max_rr_s", "rr_ratio"]
 
 
-def main_fault(w: pd.DataFrame) -> str:
+def main_fault(w) -> str:
     """The test that most often decided a lead's non-good windows ('' when all good); ties go to
-    the more direct test, and a fault share is named by its kind (flat, clipped, missing)."""
-    bad = w[w["grade"] != "good"]
-    parts = [p for cell in bad["decided_by"] for p in cell.split(";") if p]
+    the more direct test, and a fault share is named by its kind (flat, clipped, missing).
+    ``w``: a lead's window table or :func:`window_columns`."""
+    bad = np.asarray(w["grade"], dtype=object) != "good"
+    if not bad.any():
+        return ""
+    parts = [p for cell in np.asarray(w["decided_by"], dtype=object)[bad]
+             for p in cell.split(";") if p]
     if not parts:
         return ""
     rank = {k: i for i, k in enumerate(_FAULT_ORDER)}
     top = min(set(parts), key=lambda k: (-parts.count(k), rank.get(k, 99)))
     if top == "fault_fraction":
-        kinds = {k: float(bad[f"{k}_fraction"].sum()) for k in ("flat", "clipped", "missing")}
+        kinds = {k: float(np.asarray(w[f"{k}_fraction"])[bad].sum())
+                 for k in ("flat", "clipped", "missing")}
         return max(kinds, key=kinds.get)
     return top

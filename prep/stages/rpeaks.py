@@ -82,15 +82,16 @@ def detect_lead(x, fs: float, cfg: RpeaksConfig = RpeaksConfig()):
     return acc, conf, band
 
 
-def _detect(x, fs: float, cfg: RpeaksConfig):
+def _detect(x, fs: float, cfg: RpeaksConfig, envelope=None):
     """:func:`detect_lead`, also returning the QRS energy of every sample relative to the local
     reference (the envelope's maximum within ``fuse_window_ms`` over the reference height of the
     nearest candidate): 1 is a typical beat, ``searchback_threshold`` the least the detector
-    ever takes for a beat."""
+    ever takes for a beat. ``envelope``: the lead's (envelope, band) when the caller computed
+    them for several leads at once."""
     x = as_signal(x, fs, "detect_lead", min_samples=8)
     if x.ndim != 1:
         raise ValueError(f"detect_lead: one lead expected, got shape {x.shape}")
-    env, band = qrs_envelope(x, fs)
+    env, band = qrs_envelope(x, fs) if envelope is None else envelope
     dist = max(1, int(round(cfg.refractory_ms * fs / 1000)))
     cand, _ = signal.find_peaks(env, distance=int(round(0.2 * fs)))
     if cand.size == 0 or np.max(env) <= 0:
@@ -209,8 +210,10 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
     x = as_signal(x, fs, "detect_leads", min_samples=8)
     out = []
     dist = max(1, int(round(cfg.refractory_ms * fs / 1000)))
-    for j in np.flatnonzero(usable):
-        p, c, band, energy = _detect(x[j], fs, cfg)
+    leads = np.flatnonzero(usable)
+    env, bands = qrs_envelope(x[leads], fs)  # one filter pass over all usable leads
+    for i, j in enumerate(leads):
+        p, c, band, energy = _detect(x[j], fs, cfg, (env[i], bands[i]))
         r, pol = refine_r(x[j], p, fs, cfg.refine_window_ms)
         # refinement can bring two peaks together; keep the more confident one
         keep = _sparse_refractory(r, c + 1e-9, dist)
