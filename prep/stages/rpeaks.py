@@ -186,9 +186,20 @@ def window_template_quality(band: np.ndarray, peaks: np.ndarray, fs: float,
     tpl = tpl - tpl.mean()
     c = (seg @ tpl) / np.sqrt((seg * seg).sum(1) * (tpl @ tpl) + 1e-30)
     win = (p / (window_s * fs)).astype(np.int64)
-    med = pd.Series(c).groupby(win).median()
-    out[med.index.to_numpy()] = med.to_numpy()
+    out[np.unique(win)] = _group_medians(c, win)
     return out
+
+
+def _group_medians(v: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """Median of ``v`` within each value of the sorted ``group`` (in group order), as pandas'
+    ``groupby(...).median()`` computes it (the middle value, or the mean of the two middle ones),
+    for all groups at once."""
+    order = np.lexsort((v, group))
+    s = v[order]
+    _, first, size = np.unique(group[order], return_index=True, return_counts=True)
+    lo = s[first + (size - 1) // 2]
+    hi = s[first + size // 2]
+    return np.where(size % 2 == 1, lo, (lo + hi) / 2)
 
 
 @dataclass

@@ -114,3 +114,21 @@ def test_flat_and_short_inputs_give_no_beats_or_clear_errors():
     assert p.size == 0
     with pytest.raises(StageInputError, match="NaN"):
         detect_lead(np.r_[np.zeros(100), np.nan], 250.0)
+
+
+@pytest.mark.parametrize("n_values", [0, 1, 4, 8, 9, 10, 17, 333])
+def test_running_median_and_group_medians_are_pandas(n_values):
+    # pandas (the registry library) is the reference: rolling(9, center=True,
+    # min_periods=1).median() and groupby().median(), rounded values give ties on purpose
+    import pandas as pd
+
+    from prep.stages._fusion import running_median
+    from prep.stages.rpeaks import _group_medians
+    rng = np.random.default_rng(n_values)
+    for v in (rng.normal(size=n_values), np.round(rng.normal(size=n_values) * 3)):
+        ref = pd.Series(v).rolling(9, center=True, min_periods=1).median().to_numpy()
+        np.testing.assert_array_equal(running_median(v, 9), ref)
+        if n_values:
+            g = np.sort(rng.integers(0, 5, n_values))
+            np.testing.assert_array_equal(_group_medians(v, g),
+                                          pd.Series(v).groupby(g).median().to_numpy())
