@@ -19,7 +19,7 @@ def parsed_header(base: Path):
     return _parsed_header(str(base), st.st_mtime_ns, st.st_size)
 
 
-@lru_cache(maxsize=64)
+@lru_cache(maxsize=4096)  # a collection's lead pass and its processing pass share it
 def _parsed_header(base: str, mtime_ns: int, size: int):
     import wfdb
     return wfdb.rdheader(base)
