@@ -21,8 +21,56 @@ def parsed_header(base: Path):
 
 @lru_cache(maxsize=4096)  # a collection's lead pass and its processing pass share it
 def _parsed_header(base: str, mtime_ns: int, size: int):
+    quick = _quick_header(Path(base + ".hea"))
+    if quick is not None:
+        return quick
     import wfdb
     return wfdb.rdheader(base)
+
+
+# the record- and signal-line fields the reader looks at: name -> (kind, default when empty), as
+# the wfdb library's header tables give them (wfdb.io._header.RECORD_SPECS / SIGNAL_SPECS)
+_RECORD_FIELDS = {"n_seg": ("int", None), "n_sig": ("int", None), "fs": ("float", 250),
+                  "sig_len": ("int", None)}
+_SIGNAL_FIELDS = {"file_name": ("str", None), "fmt": ("str", None),
+                  "samps_per_frame": ("int", 1), "byte_offset": ("int", None),
+                  "units": ("str", "mV"), "sig_name": ("str", None)}
+
+
+def _quick_header(hea: Path):
+    """The fields above of a single-segment header, parsed as ``wfdb.rdheader`` parses them
+    (its own line patterns, defaults and types; the text read as ASCII ignoring other bytes, as
+    it does) but without its per-field table look-ups, which take 6 ms for a 12-lead header.
+    None for anything else (multi-segment, no signal, a line the patterns do not match): the
+    caller then asks wfdb itself. tests/io/test_formats.py compares both on every header."""
+    from types import SimpleNamespace
+
+    from wfdb.io.header import parse_header_content, rx_record, rx_signal
+    try:
+        text = hea.read_bytes().decode("ascii", errors="ignore")
+    except OSError:
+        return None
+    lines, _ = parse_header_content(text)
+    m = rx_record.match(lines[0]) if lines else None
+    if m is None or m.group("n_seg") or not m.group("n_sig") or int(m.group("n_sig")) == 0:
+        return None
+    out = {k: _typed(m.group(k), *spec) for k, spec in _RECORD_FIELDS.items()}
+    if isinstance(out["fs"], float) and round(out["fs"], 8) == float(int(out["fs"])):
+        out["fs"] = int(out["fs"])
+    sig = {k: [] for k in _SIGNAL_FIELDS}
+    for line in lines[1:]:
+        m = rx_signal.match(line)
+        if m is None:
+            return None
+        for k, spec in _SIGNAL_FIELDS.items():
+            sig[k].append(_typed(m.group(k), *spec))
+    return SimpleNamespace(**out, **sig)
+
+
+def _typed(text: str, kind: str, default):
+    if text == "":
+        return default
+    return int(text) if kind == "int" else float(text) if kind == "float" else text
 
 
 def lower_case_view(base: Path) -> Path:

@@ -180,3 +180,39 @@ def test_upper_case_wfdb_files_are_read(tmp_path):
     assert rec.path.endswith("NIGHT01.HEA") and record_length(found[0])[0] == ref.n_samples
     assert {n for n, _ in source_inputs(found[0], Config().read)} == {"NIGHT01.HEA", "NIGHT01.DAT",
                                                                        "NIGHT01.ATR"}
+
+
+_HEADER_VARIANTS = [
+    "rec 2 360 650000\nrec.dat 212 200 11 1024 995 -22131 0 MLII\nrec.dat 212 200 11 1024 1011 20052 0 V5\n",
+    "# a comment first\nrec 1\nrec.dat 16 200(0)/uV 16 0 0 0 0 ECG II\n",       # no rate
+    "rec 2 500.000/1000(0) 5000 10:11:12 01/02/2003\nrec.dat 16x2:1+512 1000/mV 16 0 0 0 0 I\n"
+    "rec.dat 16x2 1000 16 0 0 0 0 aVR   \n",                                 # frames, skew, offset
+    "rec 1 257.5\nrec.dat 80 100 8\n",                                       # rate, no name
+    "rec/2 2 360 1000\nseg1 500\nseg2 500\n",                                # multi-segment
+]
+
+
+@pytest.mark.parametrize("text", _HEADER_VARIANTS)
+def test_quick_header_reads_what_wfdb_reads(tmp_path, text):
+    # the wfdb library's own rdheader is the reference for every field the reader looks at
+    from prep.io._wfdb_header import _RECORD_FIELDS, _SIGNAL_FIELDS, _quick_header
+    (tmp_path / "rec.hea").write_text(text)
+    quick = _quick_header(tmp_path / "rec.hea")
+    if "/2 " in text.splitlines()[0]:
+        assert quick is None  # multi-segment: left to wfdb
+        return
+    ref = wfdb.rdheader(str(tmp_path / "rec"))
+    for k in (*_RECORD_FIELDS, *_SIGNAL_FIELDS):
+        assert (getattr(quick, k), type(getattr(quick, k))) == \
+            (getattr(ref, k, None), type(getattr(ref, k, None))), k
+
+
+def test_quick_header_on_every_reference_header():
+    # every header of the open databases in ../shared and of demo_records (wfdb as reference)
+    from prep.io._wfdb_header import _RECORD_FIELDS, _SIGNAL_FIELDS, _quick_header
+    from ..conftest import REF
+    files = sorted(DEMO.glob("*.hea")) + (sorted(REF.rglob("*.hea")) if REF.is_dir() else [])
+    for f in files:
+        quick, ref = _quick_header(f), wfdb.rdheader(str(f)[:-4])
+        for k in (*_RECORD_FIELDS, *_SIGNAL_FIELDS):
+            assert getattr(quick, k) == getattr(ref, k, None), (f.name, k)
