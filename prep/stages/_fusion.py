@@ -24,12 +24,32 @@ def running_median(v: np.ndarray, n: int) -> np.ndarray:
     if n % 2 == 0 or v.size == 0 or np.isnan(v).any():
         return pd.Series(v).rolling(n, center=True, min_periods=1).median().to_numpy()
     half = n // 2
-    padded = np.concatenate([np.full(half, np.inf), v, np.full(half, np.inf)])
-    win = np.sort(np.lib.stride_tricks.sliding_window_view(padded, n), axis=1)  # inf last
     i = np.arange(v.size)
+    padded = np.concatenate([np.full(half, np.inf), v, np.full(half, np.inf)])
+    win = np.sort(padded[i[:, None] + np.arange(n)[None, :]], axis=1)  # inf last
     k = np.minimum(i + half, v.size - 1) - np.maximum(i - half, 0) + 1  # values in the window
     lo, hi = win[i, (k - 1) // 2], win[i, k // 2]
     return np.where(k % 2 == 1, lo, (lo + hi) / 2)
+
+
+def running_quantile(v: np.ndarray, n: int, q: float) -> np.ndarray:
+    """Centred running ``q``-quantile over ``n`` values (fewer at the ends), as pandas'
+    ``rolling(n, center=True, min_periods=1).quantile(q)`` (linear interpolation; the reference
+    in tests/stages); NaN input goes to pandas."""
+    v = np.asarray(v, dtype=np.float64)
+    if v.size == 0 or np.isnan(v).any():
+        return pd.Series(v).rolling(n, center=True, min_periods=1).quantile(q).to_numpy()
+    left = n // 2  # pandas' centred window: n // 2 values before, the rest from here on
+    i = np.arange(v.size)
+    padded = np.concatenate([np.full(left, np.inf), v, np.full(n, np.inf)])
+    win = np.sort(padded[i[:, None] + np.arange(n)[None, :]], axis=1)  # inf last
+    k = np.minimum(i - left + n, v.size) - np.maximum(i - left, 0)
+    pos = q * (k - 1)
+    j = np.floor(pos).astype(np.int64)
+    frac = pos - j
+    lo = win[i, j]
+    hi = np.where(frac > 0, win[i, np.minimum(j + 1, n - 1)], lo)
+    return np.where(frac > 0, lo + (hi - lo) * frac, lo)
 
 
 @dataclass

@@ -19,7 +19,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 from scipy import ndimage, signal
 
 from prep.config import RpeaksConfig
@@ -27,7 +26,7 @@ from prep.model import StageLog
 from prep.stages._checks import as_signal
 from prep.stages._design import butter_sos
 from prep.stages._fusion import (PRUNE_RR, QUALITY_WINDOW_S, Fused, LeadEvidence, fuse,
-                                 primary_lead, running_median)
+                                 primary_lead, running_median, running_quantile)
 
 _REF_CANDIDATES = 16      # candidates in the local reference (common practice, no source)
 _REF_QUANTILE = 0.8       # reference = this quantile of candidate heights (tuned, docs/rpeaks.md)
@@ -97,8 +96,7 @@ def _detect(x, fs: float, cfg: RpeaksConfig, envelope=None):
     if cand.size == 0 or np.max(env) <= 0:
         return np.zeros(0, np.int64), np.zeros(0), band, np.zeros(x.size)
     h = env[cand]
-    ref = pd.Series(h).rolling(_REF_CANDIDATES, center=True, min_periods=1).quantile(
-        _REF_QUANTILE).to_numpy()
+    ref = running_quantile(h, _REF_CANDIDATES, _REF_QUANTILE)
     ref = np.maximum(ref, 1e-12)
     acc = _sparse_refractory(cand[h > cfg.threshold * ref], env[cand[h > cfg.threshold * ref]], dist)
     for _ in range(2):  # search back, twice so gaps split by a find can be searched again

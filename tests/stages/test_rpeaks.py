@@ -118,16 +118,19 @@ def test_flat_and_short_inputs_give_no_beats_or_clear_errors():
 
 @pytest.mark.parametrize("n_values", [0, 1, 4, 8, 9, 10, 17, 333])
 def test_running_median_and_group_medians_are_pandas(n_values):
-    # pandas (the registry library) is the reference: rolling(9, center=True,
-    # min_periods=1).median() and groupby().median(), rounded values give ties on purpose
+    # pandas (the registry library) is the reference: rolling(n, center=True,
+    # min_periods=1).median() / .quantile(q) and groupby().median(); rounded values give ties
     import pandas as pd
 
-    from prep.stages._fusion import running_median
+    from prep.stages._fusion import running_median, running_quantile
     from prep.stages.rpeaks import _group_medians
     rng = np.random.default_rng(n_values)
     for v in (rng.normal(size=n_values), np.round(rng.normal(size=n_values) * 3)):
         ref = pd.Series(v).rolling(9, center=True, min_periods=1).median().to_numpy()
         np.testing.assert_array_equal(running_median(v, 9), ref)
+        for n, q in ((16, 0.8), (5, 0.5), (7, 0.25)):
+            ref = pd.Series(v).rolling(n, center=True, min_periods=1).quantile(q).to_numpy()
+            np.testing.assert_array_equal(running_quantile(v, n, q), ref)
         if n_values:
             g = np.sort(rng.integers(0, 5, n_values))
             np.testing.assert_array_equal(_group_medians(v, g),
