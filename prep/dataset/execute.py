@@ -25,8 +25,8 @@ def n_workers(workers: int | None) -> int:
 
 
 def _warm() -> None:
-    """Pool initializer: import the signal stack (scipy.signal alone takes about 1 s) while the
-    parent is still hashing inputs, instead of on each worker's first record."""
+    """Import the signal stack (scipy.signal alone takes about 1 s) before the first record: in the
+    parent before forking, or as the initializer of spawned workers."""
     import prep.pipeline.chunks  # noqa: F401
 
 
@@ -37,7 +37,10 @@ def start_pool(n: int):
     import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor
     method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
-    pool = ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context(method), initializer=_warm)
+    if method == "fork":  # imported once here, the workers inherit it instead of each paying it
+        _warm()
+    pool = ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context(method),
+                               initializer=None if method == "fork" else _warm)
     for _ in range(n):  # start every worker now (the pool would start them one task at a time)
         pool.submit(int)
     return pool
