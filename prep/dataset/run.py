@@ -7,6 +7,7 @@ import logging
 import os
 import shutil
 from dataclasses import dataclass
+from functools import lru_cache
 from pathlib import Path
 from typing import Callable
 
@@ -271,15 +272,22 @@ def _inputs_or_empty(src: Source, cfg: Config) -> list:
         return []
 
 
+@lru_cache(maxsize=1)
+def _thread_pools():
+    """The process's thread-pool controller, made once (it scans the loaded libraries: about
+    4 ms, which a short record's task would otherwise pay each time); made after the signal
+    stack is imported, so it knows every BLAS library the stages use."""
+    from threadpoolctl import ThreadpoolController
+    return ThreadpoolController()
+
+
 def _shard_task(args) -> str:
     """Process one record and write its shard (in a worker process or on a Dask worker)."""
-    from threadpoolctl import threadpool_limits
-
     from prep.pipeline.chunks import beats_of_source
     src, cfg, axis, mapping, root, key, inputs = args
     # one BLAS thread per task: N worker processes then use N cores, not N x BLAS threads, and
     # the results cannot depend on how many threads a matrix product was split over
-    with threadpool_limits(limits=1):
+    with _thread_pools().limit(limits=1):
         res = beats_of_source(src, cfg, axis, mapping, [tuple(x) for x in inputs] or None)
     if inputs and not res.inputs:  # a record that failed still names the files it came from
         res.inputs = [tuple(x) for x in inputs]
