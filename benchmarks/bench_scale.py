@@ -12,7 +12,7 @@ workers taken in turn), as the speed benchmark does: on a shared 2-core machine 
 by 20 % or more.
 
 Speed-ups are printed for the whole run on 20 and on 40 records (every fixed cost included: the
-worker processes' start and their import of neurokit2, reading headers, consolidation, the
+worker processes' start, reading headers, hashing inputs, consolidation, the
 manifest), and for a peer measured in the same run:
 neurokit2's own R-peak pipeline (ecg_clean then ecg_peaks on a 30-minute lead), the same work
 done by one process and split over two, timed from a common start after every process has
