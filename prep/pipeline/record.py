@@ -32,10 +32,11 @@ from prep.pipeline.signals import SECOND_DETECTOR, fill_gaps, second_detector
 from prep.pipeline.tabulate import lead_row, tabulate
 from prep.quality.faults import (copied_leads, fault_reason, lead_faults, usable_of_recorded,
                                  window_fraction)
-from prep.quality.rules import BeatEvidence, decide, quality_log
+from prep.quality.rules import BeatEvidence, clean_median_rr, decide, quality_log
 from prep.quality.scores import cut_beat_scores, detector_agreement, high_freq, qrs_match
 from prep.quality.windows import grade_codes, join_columns, main_fault, window_columns
 from prep.schema import empty_beats
+from prep.stages._fusion import PRUNE_RR
 from prep.stages.bandpass import bandpass
 from prep.stages.baseline import remove_baseline
 from prep.stages.labels import noise_stretches
@@ -270,6 +271,10 @@ def _cut(st: _State) -> None:
         if st.slot_ok[k]:
             st.g_slot[:, k] = _grade_at(st, src, rv)
             st.rhythm_slot[:, k] = _grade_at(st, src, rv, st.rhythm)
+    st.shape_slot = np.zeros((rv.size, n_ax), bool)
+    for k, src in enumerate(st.rows_src):
+        if st.slot_ok[k]:
+            st.shape_slot[:, k] = _grade_at(st, src, rv, st.one_shape)
 
 
 def _mask(st: _State) -> None:
@@ -318,13 +323,17 @@ def _score(st: _State) -> None:
     n_here = np.zeros(vi.size, np.int64)
     for j in np.flatnonzero(st.usable):
         n_here += _grade_at(st, j, r[vi]) < 2
+    rr_clean = clean_median_rr(st.g_slot, st.mask, rr_prev)
+    with np.errstate(invalid="ignore"):  # the timing of an extra complex (as between_beats)
+        one_cycle = rr_prev + rr_next < PRUNE_RR * rr_clean
     st.evidence = BeatEvidence(
         mask=st.mask, grade=st.g_slot, slot_ok=st.slot_ok, annotated_noise=st.annotated,
         qrs_match=qm, second_detector=agree[vi], weak=weak[vi], n_seen=n_seen[vi],
         n_here=n_here, lone=(n_here <= 1) & (int(st.usable.sum()) >= 2),
         noisy_lead=((st.g_slot >= 1) & st.mask).any(axis=1),
         rhythm=(st.rhythm_slot & st.mask).any(axis=1), rr_prev=rr_prev, rr_next=rr_next,
-        overlap=(hi - lo) > 1, **cut)
+        overlap=(hi - lo) > 1, rr_clean=rr_clean, one_cycle=one_cycle,
+        one_shape=st.shape_slot, **cut)
     st.scores = {}  # beat-table columns over every row, NaN / '' where a row has no window
     for k in ("template_corr", "hf_ratio", "bad_fraction", "amplitude_z"):
         st.scores[k] = np.full(n, np.nan)

@@ -25,7 +25,8 @@ REASONS: dict[str, tuple[str, str]] = {
     "unmatched_in_noise": ("quality", "in a noisy window, its QRS (all usable leads together) "
                                       "correlates at least quality.noise_min_qrs_match with fewer "
                                       "than quality.qrs_match_k of the record's clean beats (every "
-                                      "usable lead graded good by the noise tests there)"),
+                                      "usable lead graded good by the noise tests there), and no "
+                                      "clean lead confirms it (quality.clean_lead_confirms)"),
     "off_edge": ("segment", "the beat window runs past the start or end of the record"),
     "in_gap": ("segment", "the beat window overlaps missing samples (a gap)"),
     "no_rr": ("segment", "mode 'rr' needs both neighbouring beats, and one is missing"),

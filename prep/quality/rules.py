@@ -45,6 +45,38 @@ class BeatEvidence:
     rr_prev: np.ndarray          # s, to the previous fusion-accepted beat
     rr_next: np.ndarray
     overlap: np.ndarray          # another accepted R inside its window
+    rr_clean: float = float("nan")  # s, the record's median RR over beats in good windows
+    one_cycle: np.ndarray | None = None  # its neighbours make one cycle together (the timing
+    #                                      of an extra complex, as between_beats judges it)
+    one_shape: np.ndarray | None = None  # (n, n_axis) the slot's window: its beats agree with
+    #                                      their average (tsqi_average >= windows.tsqi_noisy)
+
+
+def clean_median_rr(grade: np.ndarray, mask: np.ndarray, rr_prev: np.ndarray) -> float:
+    """The record's median RR (s) over beats whose every kept lead is graded good (NaN when
+    fewer than 10 such beats)."""
+    clean = ((grade == 0) | ~mask).all(axis=1) & mask.any(axis=1) & np.isfinite(rr_prev)
+    return float(np.median(rr_prev[clean])) if clean.sum() >= 10 else float("nan")
+
+
+def confirmed_by_clean_lead(ev: BeatEvidence, q: QualityConfig) -> np.ndarray:
+    """Beats the signal vouches for whatever their shape (``quality.clean_lead_confirms``): a
+    lead graded good at the beat, in a window whose beats agree with their average (the clean
+    windows that give ``qrs_match`` its library), keeps it, every usable lead there saw it, the
+    second detector found it, and it sits where a heartbeat can: its two neighbours do not make one cycle
+    together (``one_cycle``: no extra complex, as ``between_beats`` judges it) and neither is
+    closer than ``min_rr_share_confirmed`` of the record's median clean RR."""
+    n = ev.mask.shape[0]
+    if not np.isfinite(ev.rr_clean) or ev.one_cycle is None:
+        return np.zeros(n, bool)
+    with np.errstate(invalid="ignore"):
+        timing = (~ev.one_cycle & np.isfinite(ev.rr_prev + ev.rr_next)
+                  & (np.minimum(ev.rr_prev, ev.rr_next) >= q.min_rr_share_confirmed * ev.rr_clean))
+    good = (ev.grade == 0) & ev.mask
+    if ev.one_shape is not None:  # a clean window in the library's sense (see qrs_match)
+        good &= ev.one_shape
+    good_lead = good.any(axis=1)
+    return good_lead & (ev.n_seen >= ev.n_here) & ev.second_detector & timing
 
 
 def decide(ev: BeatEvidence, q: QualityConfig, wq: WindowsConfig
@@ -71,6 +103,7 @@ def decide(ev: BeatEvidence, q: QualityConfig, wq: WindowsConfig
     if q.lone_lead_min_qrs_match > -1:  # no second usable lead there: a stricter match
         unconfirmed |= ev.lone & ~(qm >= q.lone_lead_min_qrs_match)
     disagree = ~ev.second_detector
+    confirmed = confirmed_by_clean_lead(ev, q) if q.clean_lead_confirms else np.zeros(n, bool)
     pause = np.maximum(np.nan_to_num(ev.rr_prev), np.nan_to_num(ev.rr_next)) > q.long_pause_s
     rules = [
         (ev.annotated_noise, reasons, "annotated_noise"),
@@ -79,7 +112,8 @@ def decide(ev: BeatEvidence, q: QualityConfig, wq: WindowsConfig
          "detector_disagreement"),
         (has & ((in_noise & unconfirmed) |
                 (noisy_w & missed & ~(qm >= q.missed_min_qrs_match))), reasons, "weak_in_noise"),
-        (has & ev.noisy_lead & (qm < q.noise_min_qrs_match), reasons, "unmatched_in_noise"),
+        (has & ev.noisy_lead & (qm < q.noise_min_qrs_match) & ~confirmed, reasons,
+         "unmatched_in_noise"),
         (~has & ev.slot_ok.any() & ~ev.annotated_noise, reasons, "unusable_window"),
         (noisy_w, reasons if wq.exclude_noisy else flags, "noisy_window"),
         (has & (ev.bad_fraction > q.max_bad_fraction_in_beat), reasons, "flat_or_clipped"),
