@@ -34,7 +34,8 @@ from prep.quality.faults import (copied_leads, fault_reason, lead_faults, usable
                                  window_fraction)
 from prep.quality.rules import BeatEvidence, clean_median_rr, decide, quality_log
 from prep.quality.scores import cut_beat_scores, detector_agreement, high_freq, qrs_match
-from prep.quality.windows import grade_codes, join_columns, main_fault, window_columns
+from prep.quality.windows import (grade_codes, join_columns, main_fault, signal_index_columns,
+                                  window_columns)
 from prep.schema import empty_beats
 from prep.stages._fusion import PRUNE_RR
 from prep.stages.bandpass import bandpass
@@ -165,10 +166,13 @@ def _grade_leads(st: _State) -> None:
                 else {})
     empty = np.zeros(0, np.int64)
     tables, st.grades, st.rhythm, st.one_shape = [], {}, {}, {}
+    signal = (signal_index_columns(st.notched, st.y, fs, st.mains, cfg.windows)
+              if cfg.windows.enabled else [None] * len(rec.leads))  # all leads in one pass
     for j in range(len(rec.leads)):
         w = window_columns(st.notched[j], st.y[j], st.masks[j], fs,
                            st.dets[j].r if j in st.dets else empty, st.other.get(j, empty),
-                           st.mains, cfg.windows, grade=cfg.windows.enabled)
+                           st.mains, cfg.windows, grade=cfg.windows.enabled,
+                           signal_columns=signal[j])
         st.grades[j] = grade_codes(w["grade"])
         st.rhythm[j] = np.asarray(w["rhythm_findings"], dtype=object) != ""
         st.one_shape[j] = np.nan_to_num(w["tsqi_average"], nan=-1) >= cfg.windows.tsqi_noisy

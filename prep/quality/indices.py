@@ -23,11 +23,13 @@ _BSQI_TOL_S = 0.15     # Li, Mark & Clifford 2008: beats match within 150 ms
 
 
 def frames_of(x: np.ndarray, L: int, fill) -> np.ndarray:
-    """``x`` cut into rows of ``L`` samples, the last one padded with ``fill``."""
-    n_win = max(1, int(np.ceil(x.size / L)))
-    pad = np.full(n_win * L, fill, dtype=np.result_type(x.dtype, type(fill)))
-    pad[: x.size] = x
-    return pad.reshape(n_win, L)
+    """``x`` cut into rows of ``L`` samples, the last one padded with ``fill``; for ``x`` of
+    shape (n_leads, n), each lead's rows one lead after another."""
+    x2 = np.atleast_2d(x)
+    n_win = max(1, int(np.ceil(x2.shape[1] / L)))
+    pad = np.full((x2.shape[0], n_win * L), fill, dtype=np.result_type(x2.dtype, type(fill)))
+    pad[:, : x2.shape[1]] = x2
+    return pad.reshape(x2.shape[0] * n_win, L)
 
 
 @dataclass
@@ -36,6 +38,9 @@ class Frames:
 
     ``filtered``: the lead after every filter; ``notched``: after the notch only (baseline in,
     for basSQI); ``ours``/``other``: sorted R positions of our detector and the second one.
+    ``filtered`` and ``notched`` may also be several leads (n_leads, n): then the windows are
+    each lead's windows one lead after another, for the indices that read the signal only
+    (:data:`SIGNAL_INDICES`), computed for every lead at once.
     """
 
     filtered: np.ndarray
@@ -47,21 +52,35 @@ class Frames:
     mains_hz: float | None
 
     @cached_property
+    def n_leads(self) -> int:
+        return 1 if self.filtered.ndim == 1 else self.filtered.shape[0]
+
+    @cached_property
+    def lead_len(self) -> int:
+        return self.filtered.shape[-1]
+
+    @cached_property
+    def per_lead(self) -> int:
+        """Windows per lead."""
+        return max(1, int(np.ceil(self.lead_len / self.L)))
+
+    @cached_property
     def n_win(self) -> int:
-        return max(1, int(np.ceil(self.filtered.size / self.L)))
+        return self.n_leads * self.per_lead
 
     @cached_property
     def starts(self) -> np.ndarray:
-        return np.arange(self.n_win) * self.L
+        return np.tile(np.arange(self.per_lead) * self.L, self.n_leads)
 
     @cached_property
     def count(self) -> np.ndarray:
-        """Samples in each window (the last may be short)."""
-        return (np.minimum(self.starts + self.L, self.filtered.size) - self.starts).astype(float)
+        """Samples in each window (the last of a lead may be short)."""
+        return (np.minimum(self.starts + self.L, self.lead_len) - self.starts).astype(float)
 
     @cached_property
     def valid(self) -> np.ndarray:
-        return np.arange(self.n_win * self.L).reshape(self.n_win, self.L) < self.filtered.size
+        one = np.arange(self.per_lead * self.L).reshape(self.per_lead, self.L) < self.lead_len
+        return np.tile(one, (self.n_leads, 1))
 
     @cached_property
     def rows(self) -> np.ndarray:
@@ -73,13 +92,22 @@ class Frames:
         """Hann-windowed power spectra of the notched lead's windows (mean removed) and their
         frequencies."""
         nx = frames_of(self.notched, self.L, 0.0)
-        nx = (nx - (nx.sum(axis=1) / self.count)[:, None]) * self.valid
+        nx = (nx - (self.row_sum(nx) / self.count)[:, None]) * self.valid
         p = np.abs(np.fft.rfft(nx * np.hanning(self.L), axis=1)) ** 2
         return p, np.fft.rfftfreq(self.L, 1 / self.fs)
 
     def band(self, lo: float, hi: float) -> np.ndarray:
         p, f = self.spectrum
-        return p[:, (f >= lo) & (f < hi)].sum(axis=1)
+        return self.row_sum(p[:, (f >= lo) & (f < hi)])
+
+    def row_sum(self, a: np.ndarray) -> np.ndarray:
+        """Sum of each row of ``a`` (n_win, m), summed one lead's block at a time: numpy's sum
+        over rows of a taller array may add in another order, and the values must not depend on
+        how many leads were stacked."""
+        if self.n_leads == 1:
+            return a.sum(axis=1)
+        k = self.per_lead
+        return np.concatenate([a[i:i + k].sum(axis=1) for i in range(0, a.shape[0], k)])
 
     @cached_property
     def window_of_ours(self) -> np.ndarray:
@@ -90,27 +118,28 @@ def moments(w: Frames) -> dict[str, np.ndarray]:
     """kSQI and sSQI: kurtosis and skewness of the filtered lead (Li, Mark & Clifford 2008).
     Without nan-functions: the last window is zero-padded and its count is exact."""
     cnt = w.count
-    m = w.rows.sum(axis=1) / cnt
+    m = w.row_sum(w.rows) / cnt
     d = (w.rows - m[:, None]) * w.valid
     d2 = d * d
-    m2 = d2.sum(axis=1) / cnt
+    m2 = w.row_sum(d2) / cnt
     m2s = np.where(m2 > 1e-20, m2, np.nan)
-    return {"ksqi": np.nan_to_num((d2 * d2).sum(axis=1) / cnt / m2s ** 2, nan=0.0),
-            "ssqi": np.nan_to_num((d2 * d).sum(axis=1) / cnt / m2s ** 1.5, nan=0.0)}
+    return {"ksqi": np.nan_to_num(w.row_sum(d2 * d2) / cnt / m2s ** 2, nan=0.0),
+            "ssqi": np.nan_to_num(w.row_sum(d2 * d) / cnt / m2s ** 1.5, nan=0.0)}
 
 
 def amplitude(w: Frames) -> dict[str, np.ndarray]:
     """Robust amplitude: 99th minus 1st percentile of the filtered lead, mV."""
-    amp = np.empty(w.n_win)
-    full = w.filtered.size // w.L
+    amp = np.empty((w.n_leads, w.per_lead))
+    full = w.lead_len // w.L
     step = max(1, int(w.fs // 90))  # the filtered lead holds nothing above 40 Hz: 90 Hz suffices
     if full:
-        q = np.percentile(w.rows[:full, ::step], [1, 99], axis=1)
-        amp[:full] = q[1] - q[0]
-    if full < w.n_win:
-        q = np.percentile(w.filtered[full * w.L:], [1, 99])
-        amp[full:] = q[1] - q[0]
-    return {"amplitude_mv": amp}
+        rows = w.rows.reshape(w.n_leads, w.per_lead, w.L)[:, :full, ::step]
+        q = np.percentile(rows.reshape(w.n_leads * full, -1), [1, 99], axis=1)
+        amp[:, :full] = (q[1] - q[0]).reshape(w.n_leads, full)
+    if full < w.per_lead:
+        q = np.percentile(np.atleast_2d(w.filtered)[:, full * w.L:], [1, 99], axis=1)
+        amp[:, full] = q[1] - q[0]
+    return {"amplitude_mv": amp.ravel()}
 
 
 def spectral(w: Frames) -> dict[str, np.ndarray]:
@@ -118,7 +147,7 @@ def spectral(w: Frames) -> dict[str, np.ndarray]:
     2012), the residual mains share (within 1 Hz of mains and harmonics) and the share above
     40 Hz (muscle), of the notched lead's spectrum."""
     p, _ = w.spectrum
-    tot = np.maximum(p[:, 1:].sum(axis=1), 1e-30)
+    tot = np.maximum(w.row_sum(p[:, 1:]), 1e-30)
     line = np.zeros(w.n_win)
     if w.mains_hz:
         k = 1
@@ -184,6 +213,8 @@ def similarity(w: Frames) -> dict[str, np.ndarray]:
 #: the index functions, in the order of their columns in the window table
 INDICES: tuple[Callable[[Frames], dict[str, np.ndarray]], ...] = (
     moments, amplitude, spectral, agreement, rhythm, similarity)
+#: those that read the signal only (no detections): computed for all leads of a record at once
+SIGNAL_INDICES = (moments, amplitude, spectral)
 
 
 @dataclass(frozen=True)

@@ -28,7 +28,7 @@ import numpy as np
 import pandas as pd
 
 from prep.config import WindowsConfig
-from prep.quality.indices import INDICES, NOISE_TESTS, RHYTHM_TESTS, Frames
+from prep.quality.indices import INDICES, NOISE_TESTS, RHYTHM_TESTS, SIGNAL_INDICES, Frames
 
 GRADES = ("good", "noisy", "unusable")
 _FAULTS = ("flat", "clipped", "missing")
@@ -66,10 +66,13 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
 
 def window_columns(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.ndarray],
                    fs: float, ours: np.ndarray, other: np.ndarray, mains_hz: float | None,
-                   cfg: WindowsConfig = WindowsConfig(), grade: bool = True) -> dict:
+                   cfg: WindowsConfig = WindowsConfig(), grade: bool = True,
+                   signal_columns: dict | None = None) -> dict:
     """:func:`lead_windows` as a mapping of column name -> values (numpy arrays, lists for the
     text columns), in the table's column order: the pipeline joins the leads' columns into one
-    table per record instead of building a table per lead."""
+    table per record instead of building a table per lead. ``signal_columns``: this lead's
+    index results of :data:`prep.quality.indices.SIGNAL_INDICES` (by function name) from
+    :func:`signal_index_columns`."""
     fr = Frames(filtered, notched, fs, int(round(cfg.window_s * fs)), ours, other, mains_hz)
     out = {"start": fr.starts, "end": fr.starts + fr.count.astype(np.int64)}
     out.update(fault_shares(bad, fr.starts, fr.count))
@@ -78,9 +81,26 @@ def window_columns(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.
         out.update({c: np.full(n, np.nan) for c in INDEX_COLUMNS if c not in out})
         return _columns(out, ["good"] * n, [""] * n, [""] * n)
     for index in INDICES:
-        out.update(index(fr))
+        if signal_columns is not None and index in SIGNAL_INDICES:
+            out.update(signal_columns[index.__name__])
+        else:
+            out.update(index(fr))
     grades, why = grade_windows(out, cfg)
     return _columns(out, grades, why, rhythm_findings(out, cfg))
+
+
+def signal_index_columns(notched: np.ndarray, filtered: np.ndarray, fs: float,
+                         mains_hz: float | None, cfg: WindowsConfig = WindowsConfig()
+                         ) -> list[dict]:
+    """The columns of :data:`prep.quality.indices.SIGNAL_INDICES` for every lead of
+    ``notched``/``filtered`` (n_leads, n), computed in one pass over all leads (the same values
+    as lead by lead: tests/quality/test_quality.py); per lead, index name -> its columns."""
+    empty = np.zeros(0, np.int64)
+    fr = Frames(filtered, notched, fs, int(round(cfg.window_s * fs)), empty, empty, mains_hz)
+    shape = (fr.n_leads, fr.per_lead)
+    cols = {index.__name__: index(fr) for index in SIGNAL_INDICES}
+    return [{name: {k: v.reshape(shape)[j] for k, v in c.items()} for name, c in cols.items()}
+            for j in range(fr.n_leads)]
 
 
 def fault_shares(bad: dict[str, np.ndarray], starts: np.ndarray, count: np.ndarray) -> dict:
