@@ -94,8 +94,9 @@ class QualityConfig:
     min_rr_share_confirmed: float = _f(0.5, "See clean_lead_confirms: the shortest interval to a "
                                        "neighbour, as a share of the record's median RR in clean "
                                        "windows, for a beat the clean lead confirms.",
-                                       "chosen on nstdb 118e00 (0 dB): it removes the two non-beats "
-                                       "the confirmation kept there; checked on svdb and mitdb",
+                                       "chosen on nstdb 118e00 (0 dB): it removes the two "
+                                       "non-beats the confirmation kept there; checked on svdb "
+                                       "and mitdb",
                                        lo=0.0, hi=1.0)
     qrs_half_ms: float = _f(50.0, "Half-width of the QRS segment compared by qrs_match.",
                             "common practice, no source: a normal QRS lasts about 80-100 ms "

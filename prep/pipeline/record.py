@@ -271,13 +271,11 @@ def _cut(st: _State) -> None:
     rv = fused.r[st.vi]
     st.g_slot = np.full((rv.size, n_ax), 2, np.int8)
     st.rhythm_slot = np.zeros((rv.size, n_ax), bool)
+    st.shape_slot = np.zeros((rv.size, n_ax), bool)
     for k, src in enumerate(st.rows_src):
         if st.slot_ok[k]:
             st.g_slot[:, k] = _grade_at(st, src, rv)
             st.rhythm_slot[:, k] = _grade_at(st, src, rv, st.rhythm)
-    st.shape_slot = np.zeros((rv.size, n_ax), bool)
-    for k, src in enumerate(st.rows_src):
-        if st.slot_ok[k]:
             st.shape_slot[:, k] = _grade_at(st, src, rv, st.one_shape)
 
 

@@ -63,9 +63,9 @@ def confirmed_by_clean_lead(ev: BeatEvidence, q: QualityConfig) -> np.ndarray:
     """Beats the signal vouches for whatever their shape (``quality.clean_lead_confirms``): a
     lead graded good at the beat, in a window whose beats agree with their average (the clean
     windows that give ``qrs_match`` its library), keeps it, every usable lead there saw it, the
-    second detector found it, and it sits where a heartbeat can: its two neighbours do not make one cycle
-    together (``one_cycle``: no extra complex, as ``between_beats`` judges it) and neither is
-    closer than ``min_rr_share_confirmed`` of the record's median clean RR."""
+    second detector found it, and it sits where a heartbeat can: its two neighbours do not make
+    one cycle together (``one_cycle``: no extra complex, as ``between_beats`` judges it) and
+    neither is closer than ``min_rr_share_confirmed`` of the record's median clean RR."""
     n = ev.mask.shape[0]
     if not np.isfinite(ev.rr_clean) or ev.one_cycle is None:
         return np.zeros(n, bool)

@@ -23,13 +23,20 @@ def running_median(v: np.ndarray, n: int) -> np.ndarray:
     v = np.asarray(v, dtype=np.float64)
     if n % 2 == 0 or v.size == 0 or np.isnan(v).any():
         return pd.Series(v).rolling(n, center=True, min_periods=1).median().to_numpy()
-    half = n // 2
+    win, k = _sorted_windows(v, n, n // 2)
     i = np.arange(v.size)
-    padded = np.concatenate([np.full(half, np.inf), v, np.full(half, np.inf)])
-    win = np.sort(padded[i[:, None] + np.arange(n)[None, :]], axis=1)  # inf last
-    k = np.minimum(i + half, v.size - 1) - np.maximum(i - half, 0) + 1  # values in the window
     lo, hi = win[i, (k - 1) // 2], win[i, k // 2]
     return np.where(k % 2 == 1, lo, (lo + hi) / 2)
+
+
+def _sorted_windows(v: np.ndarray, n: int, before: int) -> tuple[np.ndarray, np.ndarray]:
+    """Each value's window of ``n`` values starting ``before`` values earlier (pandas' centred
+    window), sorted, cut short at the ends (padded with inf, which sorts last); and how many
+    values each window holds."""
+    i = np.arange(v.size)
+    padded = np.concatenate([np.full(before, np.inf), v, np.full(n, np.inf)])
+    win = np.sort(padded[i[:, None] + np.arange(n)[None, :]], axis=1)
+    return win, np.minimum(i - before + n, v.size) - np.maximum(i - before, 0)
 
 
 def running_quantile(v: np.ndarray, n: int, q: float) -> np.ndarray:
@@ -39,11 +46,8 @@ def running_quantile(v: np.ndarray, n: int, q: float) -> np.ndarray:
     v = np.asarray(v, dtype=np.float64)
     if v.size == 0 or np.isnan(v).any():
         return pd.Series(v).rolling(n, center=True, min_periods=1).quantile(q).to_numpy()
-    left = n // 2  # pandas' centred window: n // 2 values before, the rest from here on
+    win, k = _sorted_windows(v, n, n // 2)
     i = np.arange(v.size)
-    padded = np.concatenate([np.full(left, np.inf), v, np.full(n, np.inf)])
-    win = np.sort(padded[i[:, None] + np.arange(n)[None, :]], axis=1)  # inf last
-    k = np.minimum(i - left + n, v.size) - np.maximum(i - left, 0)
     pos = q * (k - 1)
     j = np.floor(pos).astype(np.int64)
     frac = pos - j

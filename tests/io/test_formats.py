@@ -183,7 +183,8 @@ def test_upper_case_wfdb_files_are_read(tmp_path):
 
 
 _HEADER_VARIANTS = [
-    "rec 2 360 650000\nrec.dat 212 200 11 1024 995 -22131 0 MLII\nrec.dat 212 200 11 1024 1011 20052 0 V5\n",
+    "rec 2 360 650000\nrec.dat 212 200 11 1024 995 -22131 0 MLII\n"
+    "rec.dat 212 200 11 1024 1011 20052 0 V5\n",
     "# a comment first\nrec 1\nrec.dat 16 200(0)/uV 16 0 0 0 0 ECG II\n",       # no rate
     "rec 2 500.000/1000(0) 5000 10:11:12 01/02/2003\nrec.dat 16x2:1+512 1000/mV 16 0 0 0 0 I\n"
     "rec.dat 16x2 1000 16 0 0 0 0 aVR   \n",                                 # frames, skew, offset
