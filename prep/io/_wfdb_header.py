@@ -28,49 +28,73 @@ def _parsed_header(base: str, mtime_ns: int, size: int):
     return wfdb.rdheader(base)
 
 
-# the record- and signal-line fields the reader looks at: name -> (kind, default when empty), as
-# the wfdb library's header tables give them (wfdb.io._header.RECORD_SPECS / SIGNAL_SPECS)
-_RECORD_FIELDS = {"n_seg": ("int", None), "n_sig": ("int", None), "fs": ("float", 250),
-                  "sig_len": ("int", None)}
-_SIGNAL_FIELDS = {"file_name": ("str", None), "fmt": ("str", None),
-                  "samps_per_frame": ("int", 1), "byte_offset": ("int", None),
-                  "units": ("str", "mV"), "sig_name": ("str", None)}
-
-
 def _quick_header(hea: Path):
-    """The fields above of a single-segment header, parsed as ``wfdb.rdheader`` parses them
-    (its own line patterns, defaults and types; the text read as ASCII ignoring other bytes, as
-    it does) but without its per-field table look-ups, which take 6 ms for a 12-lead header.
-    None for anything else (multi-segment, no signal, a line the patterns do not match): the
-    caller then asks wfdb itself. tests/io/test_formats.py compares both on every header."""
-    from types import SimpleNamespace
-
+    """A single-segment header parsed as ``wfdb.rdheader`` parses it (its own line patterns,
+    record-line parser, field defaults and types, the special cases of its signal-line parser;
+    the text read as ASCII ignoring other bytes, as it does) into the same ``wfdb.Record``, but
+    with the field table read once per process instead of a pandas look-up per field and
+    signal (6 ms for a 12-lead header). None for anything else (multi-segment, no signal, a
+    line the patterns do not match): the caller then asks wfdb itself.
+    tests/io/test_formats.py compares every attribute of both on every header in ../shared and
+    demo_records and on variants."""
+    from wfdb.io import _header
     from wfdb.io.header import parse_header_content, rx_record, rx_signal
+    from wfdb.io.record import Record
     try:
         text = hea.read_bytes().decode("ascii", errors="ignore")
     except OSError:
         return None
-    lines, _ = parse_header_content(text)
+    lines, comments = parse_header_content(text)
     m = rx_record.match(lines[0]) if lines else None
     if m is None or m.group("n_seg") or not m.group("n_sig") or int(m.group("n_sig")) == 0:
         return None
-    out = {k: _typed(m.group(k), *spec) for k, spec in _RECORD_FIELDS.items()}
-    if isinstance(out["fs"], float) and round(out["fs"], 8) == float(int(out["fs"])):
-        out["fs"] = int(out["fs"])
-    sig = {k: [] for k in _SIGNAL_FIELDS}
+    fields, specs = _signal_specs()
+    sig: dict = {k: [] for k in fields}
     for line in lines[1:]:
         m = rx_signal.match(line)
         if m is None:
             return None
-        for k, spec in _SIGNAL_FIELDS.items():
-            sig[k].append(_typed(m.group(k), *spec))
-    return SimpleNamespace(**out, **sig)
+        got = dict(zip(fields, m.groups()))
+        for k, (kind, default) in specs.items():
+            v = got[k]
+            if v == "":
+                v = default
+                if k == "baseline" and got["adc_zero"] != "":
+                    v = int(got["adc_zero"])  # wfdb: a missing baseline is the ADC zero
+            elif kind == "int":
+                v = int(v)
+            elif kind == "float":
+                v = float(v)
+                if k == "adc_gain" and v == 0:
+                    v = 200.0  # wfdb: a gain of 0 means 200
+            sig[k].append(v)
+    try:
+        rec_fields = _header._parse_record_line(lines[0])
+    except Exception:  # noqa: BLE001 - a date or time wfdb cannot parse: let wfdb say so
+        return None
+    record = Record()
+    for k, v in sig.items():
+        setattr(record, k, v)
+    for k, v in rec_fields.items():
+        if k != "n_seg":
+            setattr(record, k, v)
+    record.comments = [ln.strip(" \t#") for ln in comments]
+    return record
 
 
-def _typed(text: str, kind: str, default):
-    if text == "":
-        return default
-    return int(text) if kind == "int" else float(text) if kind == "float" else text
+@lru_cache(maxsize=1)
+def _signal_specs() -> tuple[list[str], dict]:
+    """The signal-line fields in the order of wfdb's line pattern, and per field its kind and
+    read default, from wfdb's own field table (wfdb.io._header.SIGNAL_SPECS)."""
+    from wfdb.io._header import SIGNAL_SPECS, float_types, int_types
+    from wfdb.io.header import rx_signal
+    order = sorted(rx_signal.groupindex, key=rx_signal.groupindex.get)
+    specs = {}
+    for k in SIGNAL_SPECS.index:
+        types = SIGNAL_SPECS.loc[k, "allowed_types"]
+        kind = "int" if types is int_types else "float" if types is float_types else "str"
+        specs[k] = (kind, SIGNAL_SPECS.loc[k, "read_default"])
+    return order, specs
 
 
 def lower_case_view(base: Path) -> Path:

@@ -5,6 +5,8 @@ Registered in :data:`prep.io.sources.FORMATS` by :data:`FORMAT`.
 """
 from __future__ import annotations
 
+import copy
+import os
 from pathlib import Path
 
 import numpy as np
@@ -106,8 +108,12 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
         return _read_multirate(base, spf, cfg, name, shown, warnings, inputs)
     end = min(x for x in (safe, sampto) if x) if (safe or sampto) else None
     try:
-        rec = wfdb.rdrecord(str(base), physical=True, return_res=64, sampfrom=int(sampfrom),
-                            **({"sampto": int(end)} if end else {}))
+        header = parsed_header(base)
+        if isinstance(header, wfdb.Record):  # the header parsed once; the samples read as wfdb does
+            rec = _read_samples(copy.deepcopy(header), base, int(sampfrom), end)
+        else:
+            rec = wfdb.rdrecord(str(base), physical=True, return_res=64, sampfrom=int(sampfrom),
+                                **({"sampto": int(end)} if end else {}))
     except FileNotFoundError as exc:
         raise RecordError(f"a file of the record is missing ({exc.filename or exc}); restore it or "
                           "leave the record out", path=shown, stage="read") from None
@@ -138,6 +144,36 @@ def read_wfdb(base: str | Path, cfg: ReadConfig = ReadConfig(), *, name: str | N
                   lead_names=[names[i] for i in keep], leads=[canonical_lead(names[i]) for i in keep],
                   units=["mV"] * len(keep), inputs=inputs, skipped=skipped, annotations=ann,
                   comments=list(rec.comments or []), path=shown, channels=keep)
+
+
+def _read_samples(record, base: Path, sampfrom: int, sampto: int | None):
+    """``wfdb.rdrecord(base, physical=True, return_res=64, ...)`` of a single-segment record
+    whose header is parsed already: the steps of wfdb's own single-segment path (length from
+    the signal file when the header has none, its input checks, its segment reader, its field
+    arrangement and physical conversion), without parsing the header again.
+    tests/io/test_formats.py compares both on every record in ../shared and demo_records."""
+    from wfdb.io import _signal
+
+    dir_name = os.path.abspath(str(base.parent))
+    if sampto is None:
+        if record.sig_len is None:
+            per_frame = sum(spf for f, spf in zip(record.file_name, record.samps_per_frame)
+                            if f == record.file_name[0])
+            record.sig_len = _signal._infer_sig_len(
+                file_name=record.file_name[0], fmt=record.fmt[0], tsamps_per_frame=per_frame,
+                byte_offset=record.byte_offset[0], dir_name=dir_name, pn_dir=None)
+        sampto = record.sig_len
+    channels = list(range(record.n_sig))
+    record.check_read_inputs(sampfrom, sampto, channels, True, True, 64)
+    record.e_d_signal = _signal._rd_segment(
+        file_name=record.file_name, dir_name=dir_name, pn_dir=None, fmt=record.fmt,
+        n_sig=record.n_sig, sig_len=record.sig_len, byte_offset=record.byte_offset,
+        samps_per_frame=record.samps_per_frame, skew=record.skew,
+        init_value=record.init_value, sampfrom=sampfrom, sampto=sampto, channels=channels,
+        ignore_skew=False, no_file=False, sig_data=None, return_res=64)
+    record._arrange_fields(channels=channels, sampfrom=sampfrom, smooth_frames=True)
+    record.dac(expanded=False, return_res=64, inplace=True)
+    return record
 
 
 def _ecg_channels(names: list[str], units: list[str], shown: str):

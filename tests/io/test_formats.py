@@ -1,7 +1,9 @@
 """Recording formats: EDF/EDF+ (incl. EDF+D built from the specification), WFDB multi-segment
 and multi-rate records, CSV annotations, and 12-lead records."""
+import copy
 import json
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -193,27 +195,59 @@ _HEADER_VARIANTS = [
 ]
 
 
+def _same_header(quick, ref, where) -> None:
+    """Every attribute of wfdb.rdheader's Record, with the same value and type."""
+    assert type(quick) is type(ref), where
+    assert sorted(vars(quick)) == sorted(vars(ref)), where
+    for k, v in vars(ref).items():
+        got = getattr(quick, k)
+        assert (got, type(got)) == (v, type(v)), (where, k)
+        if isinstance(v, list):
+            assert [type(x) for x in got] == [type(x) for x in v], (where, k)
+
+
 @pytest.mark.parametrize("text", _HEADER_VARIANTS)
 def test_quick_header_reads_what_wfdb_reads(tmp_path, text):
-    # the wfdb library's own rdheader is the reference for every field the reader looks at
-    from prep.io._wfdb_header import _RECORD_FIELDS, _SIGNAL_FIELDS, _quick_header
+    # the wfdb library's own rdheader is the reference for every field of the header
+    from prep.io._wfdb_header import _quick_header
     (tmp_path / "rec.hea").write_text(text)
     quick = _quick_header(tmp_path / "rec.hea")
     if "/2 " in text.splitlines()[0]:
         assert quick is None  # multi-segment: left to wfdb
         return
-    ref = wfdb.rdheader(str(tmp_path / "rec"))
-    for k in (*_RECORD_FIELDS, *_SIGNAL_FIELDS):
-        assert (getattr(quick, k), type(getattr(quick, k))) == \
-            (getattr(ref, k, None), type(getattr(ref, k, None))), k
+    _same_header(quick, wfdb.rdheader(str(tmp_path / "rec")), text)
 
 
 def test_quick_header_on_every_reference_header():
     # every header of the open databases in ../shared and of demo_records (wfdb as reference)
-    from prep.io._wfdb_header import _RECORD_FIELDS, _SIGNAL_FIELDS, _quick_header
+    from prep.io._wfdb_header import _quick_header
+
     from ..conftest import REF
     files = sorted(DEMO.glob("*.hea")) + (sorted(REF.rglob("*.hea")) if REF.is_dir() else [])
     for f in files:
-        quick, ref = _quick_header(f), wfdb.rdheader(str(f)[:-4])
-        for k in (*_RECORD_FIELDS, *_SIGNAL_FIELDS):
-            assert getattr(quick, k) == getattr(ref, k, None), (f.name, k)
+        _same_header(_quick_header(f), wfdb.rdheader(str(f)[:-4]), f.name)
+
+
+def test_reader_reads_the_samples_wfdb_reads():
+    # the reader parses a header once and reads the samples with wfdb's own steps: the record
+    # must be wfdb.rdrecord's (physical, 64-bit) for whole records and for stretches; every
+    # record in demo_records and ../shared (wfdb as reference)
+    from prep.io._wfdb_header import _quick_header
+    from prep.io.wfdb import _read_samples
+
+    from ..conftest import REF
+    files = sorted(DEMO.glob("*.hea")) + (sorted(REF.rglob("*.hea")) if REF.is_dir() else [])
+    for f in files:
+        base = Path(str(f)[:-4])
+        header = _quick_header(f)
+        if header is None or any(x != 1 for x in header.samps_per_frame):
+            continue
+        n = header.sig_len or 0
+        for lo, hi in ((0, None), (0, min(n, 1000) or None), (n // 3, n // 2 or None)):
+            ref = wfdb.rdrecord(str(base), physical=True, return_res=64, sampfrom=lo,
+                                **({"sampto": hi} if hi else {}))
+            got = _read_samples(copy.deepcopy(header), base, lo, hi)
+            np.testing.assert_array_equal(got.p_signal, ref.p_signal, err_msg=f.name)
+            assert got.p_signal.dtype == ref.p_signal.dtype
+            for k in ("sig_name", "units", "fs", "sig_len", "comments", "adc_gain", "baseline"):
+                assert getattr(got, k) == getattr(ref, k), (f.name, k)
