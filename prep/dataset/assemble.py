@@ -141,7 +141,8 @@ def _gather_normalized(results: list[RecordResult], order: list[tuple[int, str]]
         # a memory-mapped shard is mapped afresh and unmapped after the read: pages touched
         # through a long-lived map would stay resident and peak memory would grow with records
         if isinstance(arr, np.memmap):
-            fresh = np.load(arr.filename, mmap_mode="r")
+            fresh = np.memmap(arr.filename, arr.dtype, "r", arr.offset, arr.shape,
+                              order="C" if arr.flags.c_contiguous else "F")
             out = np.asarray(fresh[li], dtype=dtype)
             del fresh
             return out

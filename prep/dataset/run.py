@@ -18,7 +18,7 @@ from prep.dataset.assemble import Assembled, Provenance, assemble, write_assembl
 from prep.dataset.execute import execute, n_workers, start_pool
 from prep.dataset.export import NpyWriter
 from prep.dataset.folder import JOURNAL, prepare_out, swap_in
-from prep.dataset.shards import read_shard, write_shard
+from prep.dataset.shards import ShardIndex, shard_folder, write_shard
 from prep.dataset.split import load_patient_map
 from prep.errors import ConfigError
 from prep.io.sources import Source, find_sources, source_inputs, source_leads
@@ -59,7 +59,7 @@ def run(sources: list[str | Path], out: str | Path, *, config: Config | None = N
         Parallel processes (default: ``$BEATMILL_WORKERS``, else every core). Outputs are the
         same byte for byte for any number.
     shards : str, optional
-        Where per-record shards go (a folder or an fsspec URL; default ``OUT/.shards``).
+        Where shards go (a folder or an fsspec URL; default ``OUT/.shards``).
         Re-running the same command reuses committed shards whose inputs are unchanged.
     dask : str, optional
         A dask.distributed scheduler address, or ``"local"`` for a LocalCluster with one worker
@@ -126,12 +126,14 @@ def _find(sources: list[str | Path], cfg: Config) -> list[Source]:
 
 def _process(job: _Job, workers, dask, pool, progress) -> tuple[list[RecordResult], int]:
     """Every record's result: committed shards reused, the others processed (in workers or on
-    a cluster) and read back from their shards; and how many were reused."""
+    a cluster, short records in batches) and read back from their shards; and how many were
+    reused."""
     found, n = job.found, len(job.found)
     results: list = [None] * n
     todo, done = [], 0
+    index = ShardIndex(job.root)
     for i, src in enumerate(found):
-        cached = read_shard(job.root, src.name, job.key, job.inputs[i], tables=False)
+        cached = index.read(src.name, job.key, job.inputs[i], tables=False)
         if cached is None:
             todo.append(i)
             continue
@@ -142,21 +144,27 @@ def _process(job: _Job, workers, dask, pool, progress) -> tuple[list[RecordResul
     if n - len(todo):
         log.info("reused %d committed shard%s of %d records", n - len(todo),
                  "" if n - len(todo) == 1 else "s", n)
+    sizes = _input_sizes(todo, found, job.inputs)
     if dask or pool is not None:
-        todo = _largest_first(todo, found, job.inputs)
-    tasks = [(found[i], job.cfg, job.axis, job.mapping, job.root, job.key, job.inputs[i])
-             for i in todo]
-    for i, error in zip(todo, execute(_shard_task, tasks, workers, dask, pool)):
-        done += 1
-        res = read_shard(job.root, found[i].name, job.key, job.inputs[i], tables=False)
-        if res is None:  # the worker died before committing: report, never trust half a shard
-            res = RecordResult(found[i].name, "failed", error=error or "the worker processing "
-                               "this record stopped before writing its results")
-        if res.status == "failed":
-            log.warning("%s: %s", res.name, res.error)
-        results[i] = res
-        if progress:
-            progress(res, done, n)
+        todo = _largest_first(todo, sizes)
+    batches = _batches(todo, sizes, n_workers(workers))
+    tasks = [([found[i] for i in b], job.cfg, job.axis, job.mapping, job.root, job.key,
+              [job.inputs[i] for i in b]) for b in batches]
+    for batch, errors in zip(batches, execute(_shard_task, tasks, workers, dask, pool)):
+        folder = shard_folder([found[i].name for i in batch])
+        index.forget(folder)
+        for k, i in enumerate(batch):
+            done += 1
+            error = errors[k] if isinstance(errors, list) else errors
+            res = index.read(found[i].name, job.key, job.inputs[i], tables=False, folder=folder)
+            if res is None:  # the worker died before committing: report, never trust half a shard
+                res = RecordResult(found[i].name, "failed", error=error or "the worker "
+                                   "processing this record stopped before writing its results")
+            if res.status == "failed":
+                log.warning("%s: %s", res.name, res.error)
+            results[i] = res
+            if progress:
+                progress(res, done, n)
     return results, n - len(todo)
 
 
@@ -245,11 +253,8 @@ def check_train_classes(cfg: Config, mapping: dict) -> Config:
     return cfg.replace(labels={"train_classes": picked})
 
 
-def _largest_first(todo: list[int], found: list[Source], inputs: list) -> list[int]:
-    """Record indices ordered by the size of their input files, largest first (ties keep the
-    input order). Parallel workers then take long records early: a 24-hour record started last
-    would leave every other worker idle while it runs. The dataset does not depend on this
-    order."""
+def _input_sizes(todo: list[int], found: list[Source], inputs: list) -> dict[int, int]:
+    """Bytes of each record's input files (0 for those that cannot be read)."""
     def size(i: int) -> int:
         total = 0
         for name, _ in inputs[i]:
@@ -258,7 +263,32 @@ def _largest_first(todo: list[int], found: list[Source], inputs: list) -> list[i
             except OSError:
                 pass
         return total
-    return sorted(todo, key=lambda i: -size(i))
+    return {i: size(i) for i in todo}
+
+
+def _largest_first(todo: list[int], sizes: dict[int, int]) -> list[int]:
+    """Record indices ordered by the size of their input files, largest first (ties keep the
+    input order). Parallel workers then take long records early: a 24-hour record started last
+    would leave every other worker idle while it runs. The dataset does not depend on this
+    order."""
+    return sorted(todo, key=lambda i: -sizes[i])
+
+
+SMALL_RECORD_BYTES = 1 << 20  # records whose input files total at most this are batched
+MAX_BATCH = 64                # records per batch at most
+
+
+def _batches(todo: list[int], sizes: dict[int, int], workers: int) -> list[list[int]]:
+    """The worker tasks: one per record larger than SMALL_RECORD_BYTES (a 30-min two-lead
+    record is about 2 MB, a 10-s 12-lead one about 120 kB), and the small records in batches
+    of consecutive records, one shard each. A batch holds at most MAX_BATCH records and the
+    small records make at least 8 batches per worker where there are enough of them, so that
+    the last batch is a small share of a worker's work (load balance; common practice, no
+    source). The dataset does not depend on the batches."""
+    big = [[i] for i in todo if sizes.get(i, 0) > SMALL_RECORD_BYTES]
+    small = [i for i in todo if sizes.get(i, 0) <= SMALL_RECORD_BYTES]
+    per = max(1, min(MAX_BATCH, -(-len(small) // (8 * max(1, workers)))))
+    return big + [small[k:k + per] for k in range(0, len(small), per)]
 
 
 def _shard_hash(key: str) -> str:
@@ -281,18 +311,26 @@ def _thread_pools():
     return ThreadpoolController()
 
 
-def _shard_task(args) -> str:
-    """Process one record and write its shard (in a worker process or on a Dask worker)."""
+def _shard_task(args) -> list[str]:
+    """Process a batch of records and write their shard (in a worker process or on a Dask
+    worker); returns each record's error text ('' when fine)."""
     from prep.pipeline.chunks import beats_of_source
-    src, cfg, axis, mapping, root, key, inputs = args
+    sources, cfg, axis, mapping, root, key, inputs = args
+    results = []
     # one BLAS thread per task: N worker processes then use N cores, not N x BLAS threads, and
     # the results cannot depend on how many threads a matrix product was split over
     with _thread_pools().limit(limits=1):
-        res = beats_of_source(src, cfg, axis, mapping, [tuple(x) for x in inputs] or None)
-    if inputs and not res.inputs:  # a record that failed still names the files it came from
-        res.inputs = [tuple(x) for x in inputs]
-    write_shard(root, res, key, inputs)
-    return res.error
+        for src, ins in zip(sources, inputs):
+            try:
+                res = beats_of_source(src, cfg, axis, mapping, [tuple(x) for x in ins] or None)
+            except Exception as exc:  # noqa: BLE001 - one record's failure, not its batch's
+                res = RecordResult(src.name, "failed", error=f"unexpected {type(exc).__name__}: "
+                                   f"{exc}")
+            if ins and not res.inputs:  # a record that failed still names its files
+                res.inputs = [tuple(x) for x in ins]
+            results.append(res)
+    write_shard(root, results, key, inputs)
+    return [r.error for r in results]
 
 
 def resolve_extras(cfg: Config) -> tuple[dict, dict, dict]:

@@ -1,4 +1,5 @@
 """Parallel runs, shards, resume after a kill, and a real Dask LocalCluster."""
+import io
 import json
 import os
 import shutil
@@ -35,7 +36,8 @@ def test_resume_reuses_only_unchanged_committed_shards(tmp_path, monkeypatch):
     import prep.dataset.run as D
     calls = []
     real = D._shard_task
-    monkeypatch.setattr(D, "_shard_task", lambda t: calls.append(t[0].name) or real(t))
+    monkeypatch.setattr(D, "_shard_task", lambda t: calls.extend(s.name for s in t[0]) or
+                        real(t))
     run([src], out)                              # same command: nothing redone
     assert calls == [] and _bytes(out) == first
     (src / "night03.atr").unlink()               # one input changed
@@ -43,7 +45,11 @@ def test_resume_reuses_only_unchanged_committed_shards(tmp_path, monkeypatch):
     assert calls == ["night03"]
     # a shard whose files were tampered with is not trusted
     shard = next((out / ".shards").glob("night01-*"))
-    (shard / "beats.arrow").write_bytes(b"junk")
+    entry = json.loads((shard / "COMMIT.json").read_text())["records"][0]
+    data = bytearray((shard / "data.bin").read_bytes())
+    at, length, _ = entry["files"]["beats.arrow"]
+    data[at:at + length] = b"j" * length
+    (shard / "data.bin").write_bytes(bytes(data))
     run([src], out)
     assert calls == ["night03", "night01"]
     assert check_dataset(out) == []
@@ -179,8 +185,9 @@ def test_consolidation_reads_tables_from_shards_only_when_visited(demo_run):
     out, _ = demo_run
     root = out / ".shards"
     man = json.loads((out / "manifest.json").read_text())
-    commits = {json.loads(p.read_text())["record"]: json.loads(p.read_text())
-               for p in root.glob("*/COMMIT.json")}
+    commits = {e["record"]: c for c in (json.loads(p.read_text())
+                                        for p in root.glob("*/COMMIT.json"))
+               for e in c["records"]}
     found, _ = find_sources([DEMO])
     lazy, full = [], []
     for s in found:
@@ -339,16 +346,19 @@ def test_lazy_shards_hold_no_memory_map(demo_run):
     # equal numpy.load's.
     import numpy as np
 
-    from prep.dataset.shards import read_shard, shard_name
+    from prep.dataset.shards import read_shard
     out, _ = demo_run
     root = out / ".shards"
-    commits = [json.loads(p.read_text()) for p in root.glob("*/COMMIT.json")]
-    got = [read_shard(str(root), c["record"], c["config_sha256"], None, tables=False)
-           for c in commits]
+    commits = {p.parent.name: json.loads(p.read_text()) for p in root.glob("*/COMMIT.json")}
+    got = {f: [read_shard(str(root), e["record"], c["config_sha256"], None, tables=False)
+               for e in c["records"]] for f, c in commits.items()}
     assert str(root) not in open("/proc/self/maps").read()
-    for r, c in zip(got, commits):
-        ref = np.load(root / shard_name(c["record"]) / "tensor.npy")
-        assert r.tensor.shape == ref.shape and np.array_equal(r.tensor[[0, 2]], ref[[0, 2]])
+    for f, c in commits.items():
+        data = (root / f / "data.bin").read_bytes()
+        for r, e in zip(got[f], c["records"]):
+            at, length, _ = e["files"]["tensor.npy"]
+            ref = np.load(io.BytesIO(data[at:at + length]))
+            assert r.tensor.shape == ref.shape and np.array_equal(r.tensor[[0, 2]], ref[[0, 2]])
     assert str(root) not in open("/proc/self/maps").read()
 
 
@@ -356,7 +366,7 @@ def test_parallel_runs_start_the_largest_records_first(tmp_path):
     # Longest-processing-time-first is the classic list-scheduling rule (Graham, 1969, from
     # memory): a long record taken last would leave the other workers idle. Input size stands
     # in for processing time; equal sizes keep the input order.
-    from prep.dataset.run import _largest_first
+    from prep.dataset.run import _input_sizes, _largest_first
     from prep.io.sources import Source
     sizes = {"a": 10, "b": 300, "c": 10, "d": 50}
     found, inputs = [], []
@@ -365,5 +375,79 @@ def test_parallel_runs_start_the_largest_records_first(tmp_path):
         (tmp_path / f"{name}.hea").write_text("h")
         found.append(Source("wfdb", tmp_path / name, name))
         inputs.append([(f"{name}.hea", "-"), (f"{name}.dat", "-"), ("gone.atr", "-")])
-    assert _largest_first([0, 1, 2, 3], found, inputs) == [1, 3, 0, 2]
-    assert _largest_first([2, 0], found, inputs) == [2, 0]
+    got = _input_sizes([0, 1, 2, 3], found, inputs)
+    assert got == {0: 11, 1: 301, 2: 11, 3: 51}   # the header's byte counts too; gone.atr: 0
+    assert _largest_first([0, 1, 2, 3], got) == [1, 3, 0, 2]
+    assert _largest_first([2, 0], got) == [2, 0]
+
+
+def test_short_records_are_batched_large_ones_are_not():
+    from prep.dataset.run import MAX_BATCH, SMALL_RECORD_BYTES, _batches
+    big, small = SMALL_RECORD_BYTES + 1, 120_000
+    sizes = {0: big, 1: small, 2: small, 3: big, **{i: small for i in range(4, 404)}}
+    got = _batches(list(sizes), sizes, workers=2)
+    assert got[:2] == [[0], [3]]                       # one task per large record, first
+    rest = got[2:]
+    assert [i for b in rest for i in b] == [1, 2] + list(range(4, 404))   # order kept, all once
+    assert len(rest) >= 16 and max(map(len, rest)) <= MAX_BATCH   # >= 8 batches per worker
+    assert _batches([1, 2], sizes, workers=2) == [[1], [2]]
+    many = {i: small for i in range(20_000)}
+    assert max(map(len, _batches(list(many), many, workers=2))) == MAX_BATCH
+    assert _batches([], {}, workers=2) == []
+
+
+def test_batched_shards_same_bytes_resume_and_tamper(demo_run, tmp_path, monkeypatch):
+    # Short records processed in batches write one shard folder per batch; the dataset is the
+    # same bytes; a resumed run reuses every record; a record whose files in a batch's data
+    # file were altered is redone alone, its batch mates are reused.
+    import prep.dataset.run as D
+    out1, _ = demo_run
+    monkeypatch.setattr(D, "MAX_BATCH", 3)
+    calls = []
+    real = D._shard_task
+    monkeypatch.setattr(D, "_shard_task", lambda t: calls.append([s.name for s in t[0]]) or
+                        real(t))
+    out = tmp_path / "b"
+    monkeypatch.setattr(D, "_batches", lambda todo, sizes, workers: [todo[k:k + 3] for k in
+                                                                      range(0, len(todo), 3)])
+    run([DEMO], out, workers=1)
+    assert _bytes(out) == _bytes(out1) and check_dataset(out) == []
+    assert [len(c) for c in calls] == [3, 3, 1]
+    folders = sorted(p.parent.name for p in (out / ".shards").glob("*/COMMIT.json"))
+    assert len(folders) == 3 and sum(f.startswith("batch-") for f in folders) == 2
+    calls.clear()
+    run([DEMO], out, workers=1)
+    assert calls == [] and _bytes(out) == _bytes(out1)
+    # alter one byte of the second record's beat table inside the first batch's data file
+    batch = next(f for f in folders if f.startswith("batch-"))
+    commit = json.loads((out / ".shards" / batch / "COMMIT.json").read_text())
+    victim = commit["records"][1]
+    off = victim["files"]["beats.arrow"][0] + 100
+    data = bytearray((out / ".shards" / batch / "data.bin").read_bytes())
+    data[off] ^= 0xFF
+    (out / ".shards" / batch / "data.bin").write_bytes(bytes(data))
+    run([DEMO], out, workers=1)
+    assert calls == [[victim["record"]]] and _bytes(out) == _bytes(out1)
+
+
+def test_shards_on_an_fsspec_store(demo_run, tmp_path, monkeypatch):
+    # A shard root given as an fsspec URL (here fsspec's in-memory store, standing in for an
+    # object store a cluster shares) is read through the store, not through memory maps: the
+    # dataset is the same bytes, batches included, and a second run reuses every record.
+    pytest.importorskip("fsspec")
+    import fsspec
+
+    import prep.dataset.run as D
+    out1, _ = demo_run
+    monkeypatch.setattr(D, "_batches", lambda todo, sizes, workers: [todo[k:k + 4] for k in
+                                                                      range(0, len(todo), 4)])
+    url = f"memory://beatmill-{os.getpid()}-{tmp_path.name}"
+    try:
+        s = run([DEMO], tmp_path / "m", workers=1, shards=url)
+        assert _bytes(tmp_path / "m") == _bytes(out1) and s.n_reused == 0
+        fs = fsspec.filesystem("memory")
+        assert len(fs.glob(url.removeprefix("memory:/") + "/*/COMMIT.json")) == 2
+        again = run([DEMO], tmp_path / "m", workers=1, shards=url)
+        assert again.n_reused == 7 and _bytes(tmp_path / "m") == _bytes(out1)
+    finally:
+        fsspec.filesystem("memory").rm(url, recursive=True)
