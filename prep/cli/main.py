@@ -35,8 +35,9 @@ def run(inputs: List[str] = typer.Argument(..., metavar="INPUTS", help="WFDB hea
         seed: Optional[int] = typer.Option(None, "--seed", metavar="SEED", help="Seed of the patient split."),
         workers: Optional[int] = typer.Option(None, "--workers", "-w", min=1,
                                               metavar="WORKERS", help="Parallel processes (default: all cores)."),
-        shards: Optional[str] = typer.Option(None, "--shards", metavar="SHARDS", help="Where the shards (scratch results per record or batch) go "
-                                             "(folder or fsspec URL; default OUT/.shards)."),
+        shards: Optional[str] = typer.Option(None, "--shards", metavar="SHARDS", help="Where the shards (scratch results "
+                                             "per record or batch) go (folder or fsspec URL; "
+                                             "default OUT/.shards)."),
         dask: Optional[str] = typer.Option(None, "--dask", metavar="DASK", help="dask.distributed scheduler "
                                            "address, or 'local' for a LocalCluster."),
         overwrite: bool = typer.Option(False, "--overwrite",

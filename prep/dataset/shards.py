@@ -37,17 +37,20 @@ def _fs(root: str):
     return fsspec.core.url_to_fs(str(root))
 
 
+def _safe(name: str, n: int) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", name)[:n]
+
+
 def shard_name(record: str) -> str:
     """A file-system-safe, unique folder name for a record name."""
-    safe = re.sub(r"[^A-Za-z0-9_.-]+", "_", record)[:60]
-    return f"{safe}-{hashlib.sha256(record.encode()).hexdigest()[:12]}"
+    return f"{_safe(record, 60)}-{hashlib.sha256(record.encode()).hexdigest()[:12]}"
 
 
 def shard_folder(records: list[str]) -> str:
     """The folder name of a shard holding these records (a record's own name when alone)."""
     if len(records) == 1:
         return shard_name(records[0])
-    first = re.sub(r"[^A-Za-z0-9_.-]+", "_", records[0])[:40]
+    first = _safe(records[0], 40)
     digest = hashlib.sha256("\n".join(records).encode()).hexdigest()[:12]
     return f"batch-{first}-{len(records)}-{digest}"
 
