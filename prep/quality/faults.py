@@ -43,26 +43,52 @@ def clip_mask(x: np.ndarray, run: int) -> np.ndarray:
     return _runs(x >= hi, run) | _runs(x <= lo, run)
 
 
+def _row_runs(mask: np.ndarray, min_len: int) -> np.ndarray:
+    """:func:`_runs` on every row of a 2-D mask at once: the rows are laid end to end with one
+    False between them, so no run crosses from one row into the next."""
+    if mask.shape[-1] == 0 or min_len <= 1:
+        return mask.copy()
+    padded = np.zeros((mask.shape[0], mask.shape[1] + 1), bool)
+    padded[:, :-1] = mask
+    return _runs(padded.ravel(), min_len).reshape(padded.shape)[:, :-1]
+
+
 def lead_faults(raw: np.ndarray, fs: float, cfg: QualityConfig, gap: np.ndarray):
     """Per-lead fault masks and summary. ``raw``: (n_leads, n_samples), gaps already filled.
 
     Returns ``bad`` (n_leads, n_samples) True where flat, clipped or missing, the separate masks
     per lead (``{"flat", "clipped", "missing"}``), and one dict per lead with the fractions.
+    Leads without missing samples are done together, as 2-D arrays (the same masks as
+    :func:`flat_mask` and :func:`clip_mask` lead by lead: tests/quality/test_quality.py).
     """
-    bad = np.zeros(raw.shape, bool)
-    summary, masks = [], []
-    for j in range(raw.shape[0]):
-        gj = gap[j]
-        fl = flat_mask(np.where(gj, np.nan, raw[j]), fs, cfg.flat_ms) & ~gj
-        cl = clip_mask(raw[j][~gj], cfg.clip_run_samples) if (~gj).any() else np.zeros(0, bool)
-        clipped = np.zeros(raw.shape[1], bool)
-        clipped[~gj] = cl
-        clipped &= ~fl
-        bad[j] = fl | clipped | gj
-        masks.append({"flat": fl, "clipped": clipped, "missing": gj})
-        summary.append({"flat_fraction": float(fl.mean()), "clipped_fraction": float(clipped.mean()),
-                        "missing_fraction": float(gj.mean()),
-                        "usable_fraction": float(1 - bad[j].mean())})
+    n_leads, n = raw.shape
+    gap = np.asarray(gap, bool)
+    flat = np.zeros(raw.shape, bool)
+    clipped = np.zeros(raw.shape, bool)
+    if n:
+        x = np.where(gap, np.nan, raw)
+        same = np.zeros(raw.shape, bool)
+        same[:, 1:] = np.diff(x, axis=1) == 0
+        same[:, :-1] |= same[:, 1:]  # the first sample of a run belongs to it
+        flat = _row_runs(same, max(2, int(round(cfg.flat_ms * fs / 1000)))) & ~gap
+        whole = ~gap.any(axis=1)  # leads with no missing sample: clipping judged on all at once
+        if whole.any():
+            w = raw[whole]
+            hi, lo = w.max(axis=1, keepdims=True), w.min(axis=1, keepdims=True)
+            run = cfg.clip_run_samples
+            c = _row_runs(w >= hi, run) | _row_runs(w <= lo, run)
+            c[(hi == lo)[:, 0]] = False  # a constant lead is flat, not clipped
+            clipped[whole] = c
+        for j in np.flatnonzero(~whole):  # clipping judged on the recorded samples only
+            gj = gap[j]
+            if (~gj).any():
+                clipped[j, ~gj] = clip_mask(raw[j][~gj], cfg.clip_run_samples)
+    clipped &= ~flat
+    bad = flat | clipped | gap
+    masks = [{"flat": flat[j], "clipped": clipped[j], "missing": gap[j]} for j in range(n_leads)]
+    summary = [{"flat_fraction": float(flat[j].mean()), "clipped_fraction": float(clipped[j].mean()),
+                "missing_fraction": float(gap[j].mean()),
+                "usable_fraction": float(1 - bad[j].mean())} for j in range(n_leads)]
     return bad, masks, summary
 
 

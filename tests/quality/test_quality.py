@@ -228,3 +228,38 @@ def test_signal_indices_of_all_leads_at_once_equal_lead_by_lead(seconds):
         for index in SIGNAL_INDICES:
             for k, v in index(fr).items():
                 np.testing.assert_array_equal(together[j][index.__name__][k], v)
+
+
+def test_lead_faults_of_all_leads_at_once_equal_lead_by_lead():
+    # the 2-D masks must equal flat_mask / clip_mask run lead by lead (the definition), bit for
+    # bit: a flat stretch, a clipped top, a constant lead, a copy with a gap and one clipped
+    # across a gap (judged on its recorded samples only)
+    from prep.config import QualityConfig
+    from prep.quality.faults import clip_mask, flat_mask, lead_faults
+    fs, n = 250.0, 2500
+    rng = np.random.default_rng(7)
+    x = rng.standard_normal((5, n))
+    x[0, 500:800] = 0.25                                  # lead-off stretch
+    x[1] = np.minimum(x[1], 1.0)                          # clipped top
+    x[2] = 3.0                                            # constant: flat, not clipped
+    gap = np.zeros(x.shape, bool)
+    gap[3, 1000:1200] = True
+    x[3, 1000:1200] = 0.0                                 # a gap, filled
+    x[4, 100:103] = x[4, 1200:1203] = 9.0                 # a run of the maximum split ...
+    gap[4, 103:1200] = True                               # ... by a gap
+    cfg = QualityConfig()
+    bad, masks, summary = lead_faults(x, fs, cfg, gap)
+    for j in range(5):
+        gj = gap[j]
+        fl = flat_mask(np.where(gj, np.nan, x[j]), fs, cfg.flat_ms) & ~gj
+        cl = np.zeros(n, bool)
+        cl[~gj] = clip_mask(x[j][~gj], cfg.clip_run_samples)
+        cl &= ~fl
+        np.testing.assert_array_equal(masks[j]["flat"], fl)
+        np.testing.assert_array_equal(masks[j]["clipped"], cl)
+        np.testing.assert_array_equal(bad[j], fl | cl | gj)
+        assert summary[j]["flat_fraction"] == float(fl.mean())
+        assert summary[j]["usable_fraction"] == float(1 - (fl | cl | gj).mean())
+    assert masks[0]["flat"][500:800].all() and masks[1]["clipped"].any()
+    assert masks[2]["flat"].all() and not masks[2]["clipped"].any()
+    assert masks[4]["clipped"][100:103].all()             # 6 recorded samples at the maximum
