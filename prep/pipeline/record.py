@@ -28,7 +28,7 @@ from prep.leads import match_lead
 from prep.model import Record, StageLog
 from prep.pipeline.result import RecordResult
 from prep.pipeline.rr import rr_to_beats
-from prep.pipeline.signals import SECOND_DETECTOR, fill_gaps, second_detector
+from prep.pipeline.signals import SECOND_DETECTOR, fill_gaps, second_detector_leads
 from prep.pipeline.tabulate import lead_row, tabulate
 from prep.quality.faults import (copied_leads, fault_reason, lead_faults, usable_of_recorded,
                                  window_fraction)
@@ -162,8 +162,9 @@ def _grade_leads(st: _State) -> None:
     for d in st.dets.values():  # no beat inside a gap: the bridged line there is not signal
         inside = ~st.gap[d.lead][d.r]
         d.r, d.conf = d.r[inside], d.conf[inside]
-    st.other = ({j: second_detector(st.y[j], fs) for j in st.dets} if cfg.windows.enabled
-                else {})
+    leads = list(st.dets)
+    st.other = (dict(zip(leads, second_detector_leads(st.y[leads], fs)))
+                if cfg.windows.enabled and leads else {})
     empty = np.zeros(0, np.int64)
     tables, st.grades, st.rhythm, st.one_shape = [], {}, {}, {}
     signal = (signal_index_columns(st.notched, st.y, fs, st.mains, cfg.windows)

@@ -26,10 +26,15 @@ def second_detector(x: np.ndarray, fs: float) -> np.ndarray:
     """R peaks of a second, independent detector on the filtered lead (for bSQI and agreement):
     :func:`gradient_peaks`, the gradient-threshold method of neurokit2's ``ecg_findpeaks``
     (``method="neurokit"``), run without importing neurokit2 (about 1 s per process)."""
+    return second_detector_leads(np.asarray(x)[None, :], fs)[0]
+
+
+def second_detector_leads(x: np.ndarray, fs: float) -> list[np.ndarray]:
+    """:func:`second_detector` on every row of ``x`` (n_leads, n) at once, one array per row."""
     # the lead is already band-limited to 40 Hz, so keeping every q-th sample down to >= 90 Hz
     # does not alias it; the peer detector then runs q times faster (R within +-q samples)
     q = max(1, int(fs // 90))
-    return gradient_peaks(x[::q], int(round(fs / q))) * q
+    return [p * q for p in gradient_rows(x[:, ::q], int(round(fs / q)))]
 
 
 def gradient_peaks(x: np.ndarray, fs: int, smooth_s: float = 0.1, average_s: float = 0.75,
@@ -47,32 +52,58 @@ def gradient_peaks(x: np.ndarray, fs: int, smooth_s: float = 0.1, average_s: flo
     simulations (tests/pipeline/test_signals.py). An input too short for the averaging window
     gives no peak (the original raises).
     """
+    return gradient_rows(np.asarray(x)[None, :], fs, smooth_s, average_s, weight,
+                         min_len_weight, min_delay_s)[0]
+
+
+def gradient_rows(x: np.ndarray, fs: int, smooth_s: float = 0.1, average_s: float = 0.75,
+                  weight: float = 1.5, min_len_weight: float = 0.4,
+                  min_delay_s: float = 0.3) -> list[np.ndarray]:
+    """:func:`gradient_peaks` on every row of ``x`` (n_rows, n): the filters run along the rows
+    of one array, and the peaks of all rows' QRS stretches are found in one call (the rows laid
+    end to end, no stretch crossing a row's end)."""
     from scipy import ndimage
 
     x = np.asarray(x, dtype=np.float64)
+    rows, n = x.shape
     k_smooth, k_avg = int(np.rint(smooth_s * fs)), int(np.rint(average_s * fs))
-    empty = np.zeros(0, np.int64)
-    if not (1 <= k_smooth <= x.size and 1 <= k_avg <= x.size):
-        return empty
-    smooth = ndimage.uniform_filter1d(np.abs(np.gradient(x)), k_smooth, mode="nearest")
-    qrs = smooth > weight * ndimage.uniform_filter1d(smooth, k_avg, mode="nearest")
-    starts = np.flatnonzero(~qrs[:-1] & qrs[1:])
-    if starts.size == 0:
-        return empty
-    ends = np.flatnonzero(qrs[:-1] & ~qrs[1:])
-    ends = ends[ends > starts[0]]
-    n = min(starts.size, ends.size)
-    if n == 0:
-        return empty
-    starts, ends = starts[:n], ends[:n]
-    keep = (ends - starts) >= np.mean(ends - starts) * min_len_weight
+    out = [np.zeros(0, np.int64) for _ in range(rows)]
+    if not (1 <= k_smooth <= n and 1 <= k_avg <= n):
+        return out
+    smooth = ndimage.uniform_filter1d(np.abs(np.gradient(x, axis=-1)), k_smooth, axis=-1,
+                                      mode="nearest")
+    qrs = smooth > weight * ndimage.uniform_filter1d(smooth, k_avg, axis=-1, mode="nearest")
+    rise, fall = ~qrs[:, :-1] & qrs[:, 1:], qrs[:, :-1] & ~qrs[:, 1:]
+    first, last, owner = [], [], []
+    for j in range(rows):
+        starts = np.flatnonzero(rise[j])
+        if starts.size == 0:
+            continue
+        ends = np.flatnonzero(fall[j])
+        ends = ends[ends > starts[0]]
+        m = min(starts.size, ends.size)
+        if m == 0:
+            continue
+        starts, ends = starts[:m], ends[:m]
+        keep = (ends - starts) >= np.mean(ends - starts) * min_len_weight
+        first.append(starts[keep] + j * n)
+        last.append(ends[keep] + j * n)
+        owner.append(np.full(int(keep.sum()), j))
+    if not first:
+        return out
+    owner = np.concatenate(owner)
+    found = _most_prominent(x.ravel(), np.concatenate(first), np.concatenate(last))
     min_delay = int(np.rint(fs * min_delay_s))
-    peaks, last = [], 0
-    for peak in _most_prominent(x, starts[keep], ends[keep]).tolist():
-        if peak >= 0 and peak - last > min_delay:
-            peaks.append(peak)
-            last = peak
-    return np.asarray(peaks, dtype=np.int64)
+    for j in np.unique(owner).tolist():
+        peaks, prev = [], 0
+        for peak in found[owner == j].tolist():
+            if peak >= 0:
+                peak -= j * n
+                if peak - prev > min_delay:
+                    peaks.append(peak)
+                    prev = peak
+        out[j] = np.asarray(peaks, dtype=np.int64)
+    return out
 
 
 def _most_prominent(x: np.ndarray, starts: np.ndarray, ends: np.ndarray) -> np.ndarray:
