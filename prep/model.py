@@ -71,6 +71,7 @@ class Record:
     path: str = ""
     channels: list[int] = field(default_factory=list)  # source channel number of each lead
     warnings: list[str] = field(default_factory=list)  # problems the reader worked around
+    first_sample: int = 0  # sample number of signals[:, 0] in the source (a chunk's start)
 
     @property
     def n_samples(self) -> int:

@@ -54,7 +54,8 @@ def beats_of_source(src: Source, cfg: Config, axis: list[str], mapping=None,
     parts = []
     inputs = inputs or source_inputs(src, cfg.read)  # hashed once, not once per chunk
     for k, (lo, a, b, hi) in enumerate(plan):  # one step per chunk
-        res = record_result(lambda: read_source(src, cfg.read, inputs, sampfrom=lo, sampto=hi),
+        res = record_result(lambda: _from(read_source(src, cfg.read, inputs, sampfrom=lo,
+                                                      sampto=hi), lo),
                             src.name, cfg, axis, mapping)
         if res.status == "failed":
             return RecordResult(src.name, "failed", error=f"chunk {a}-{b}: {res.error}")
@@ -62,6 +63,12 @@ def beats_of_source(src: Source, cfg: Config, axis: list[str], mapping=None,
         if on_chunk is not None:
             on_chunk(src.name, k + 1, len(plan))
     return merge_chunks(src, parts, n, fs, cfg)
+
+
+def _from(rec, lo: int):
+    """The chunk's record, told where it starts in the source (it places the baseline blocks)."""
+    rec.first_sample = lo
+    return rec
 
 
 def _core(lo: int, a: int, b: int, res: RecordResult) -> RecordResult:

@@ -151,7 +151,7 @@ def _condition(st: _State) -> None:
     st.mains, st.notched = lg.derived.get("mains_hz"), y
     y, lg = bandpass(y, fs, cfg.bandpass)
     res.logs.append(lg)
-    st.y, lg = remove_baseline(y, fs, cfg.baseline)
+    st.y, lg = remove_baseline(y, fs, cfg.baseline, start=st.rec.first_sample)
     res.logs.append(lg)
 
 

@@ -111,8 +111,11 @@ def test_a_beat_must_show_in_every_clean_lead(v5_gain, kept):
     rec = _record(_sinus(110.0, events=ev), v5_gain={"V": v5_gain})
     v = beats_of_record(rec, Config(), ["II", "V5"]).beats
     v = v[v.label == "V"]
-    assert len(v) == 3
+    # one row per PVC when it shows in V5; with nothing in V5 a wide PVC's second lobe may add a
+    # detection of its own within the label tolerance, judged the same way
+    assert len(v) == 3 if kept else 3 <= len(v) <= 6
     assert v.included.all() == kept and v.is_beat.all() == kept, v[["reasons", "n_leads_seen"]]
+    assert v.included.any() == kept and v.is_beat.any() == kept
     if not kept:
         assert (v.reasons == "one_lead_only").all()
 

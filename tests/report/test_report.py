@@ -40,8 +40,8 @@ def test_report_is_self_contained_and_complete(report):
     assert "holds no abnormal beat" in text                        # the run's split warnings
     assert "[bandpass]" in text and "low_hz = " in text             # the configuration as TOML
     t = pd.read_parquet(run / "beats.parquet")
-    some = t[t.reasons.str.contains("high_freq_noise")].beat_id.iloc[0]
-    assert some in text                                            # ready for 'beatmill why'
+    noisy = t[t.reasons.str.contains("high_freq_noise")].beat_id
+    assert any(b in text for b in noisy)                           # ready for 'beatmill why'
     assert "not a medical device" in text
     assert check_dataset(run) == []                                # check ignores report.html
 
