@@ -66,7 +66,8 @@ def beats_of_source(src: Source, cfg: Config, axis: list[str], mapping=None,
 
 
 def _from(rec, lo: int):
-    """The chunk's record, told where it starts in the source (it places the baseline blocks)."""
+    """The chunk's record, told where it starts in the source (the baseline medians take their
+    samples by source sample number)."""
     rec.first_sample = lo
     return rec
 

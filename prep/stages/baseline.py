@@ -23,7 +23,14 @@ def decimation_step(fs: float, rate_hz: float) -> int:
     """
     if rate_hz <= 0 or rate_hz * 2 > fs:
         return 1
-    return max(1, int(fs // rate_hz))
+    return int(fs // rate_hz)
+
+
+def median_windows(fs: float, first_ms: float, second_ms: float,
+                   rate_hz: float) -> tuple[int, int, int]:
+    """(decimation step, first window, second window), the windows in samples taken (odd)."""
+    d = decimation_step(fs, rate_hz)
+    return d, _odd(first_ms * fs / d / 1000), _odd(second_ms * fs / d / 1000)
 
 
 def median_baseline(x: np.ndarray, fs: float, first_ms: float, second_ms: float,
@@ -45,15 +52,13 @@ def median_baseline(x: np.ndarray, fs: float, first_ms: float, second_ms: float,
     >>> bool(np.abs(median_baseline(drift, fs, 200, 600, rate_hz=100) - drift).max() < 0.01)
     True
     """
-    d = decimation_step(fs, rate_hz)
+    d, w1, w2 = median_windows(fs, first_ms, second_ms, rate_hz)
     flat = x.reshape(-1, x.shape[-1])
     n = flat.shape[-1]
     at = np.arange((-int(start)) % d, n, d) if d > 1 else None
     if at is not None and at.size == 0:  # shorter than one step: its first sample
         at = np.array([0])
     taken = flat if at is None else flat[:, at]
-    rate = fs / d
-    w1, w2 = _odd(first_ms * rate / 1000), _odd(second_ms * rate / 1000)
     base = np.empty_like(taken)
     for i, row in enumerate(taken):  # 1-D filters: ndimage is ~20x slower on a (1, w) footprint
         b = ndimage.median_filter(row, size=w1, mode="nearest")
@@ -78,9 +83,8 @@ def remove_baseline(x, fs: float, cfg: BaselineConfig = BaselineConfig(), start:
     if cfg.method == "none":
         return x.copy(), log
     if cfg.method == "median":
-        d = decimation_step(fs, cfg.median_rate_hz)
-        w1 = _odd(cfg.first_window_ms * fs / d / 1000)
-        w2 = _odd(cfg.second_window_ms * fs / d / 1000)
+        d, w1, w2 = median_windows(fs, cfg.first_window_ms, cfg.second_window_ms,
+                                   cfg.median_rate_hz)
         log.params.update(first_window_ms=cfg.first_window_ms, second_window_ms=cfg.second_window_ms,
                           median_rate_hz=cfg.median_rate_hz)
         log.derived.update(decimation_step=d, median_rate_hz=round(fs / d, 6),
