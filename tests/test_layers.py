@@ -11,7 +11,7 @@ import pytest
 PKG = Path(__file__).resolve().parents[1] / "prep"
 CORE = {"prep", "prep.errors", "prep.model", "prep.config", "prep.config.declare",
         "prep.config.signal", "prep.config.quality", "prep.config.labels", "prep.leads",
-        "prep.evaluate", "prep.schema", "prep.demo"}
+        "prep.evaluate", "prep.schema", "prep.demo", "prep.arrays"}
 
 # subpackage (or top-level module) -> what its modules may import besides the core
 ALLOWED = {

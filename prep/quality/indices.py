@@ -16,6 +16,8 @@ from typing import Callable
 
 import numpy as np
 
+from prep.arrays import group_medians
+
 _TSQI_K = 3            # a beat must resemble this many other beats of its lead (as qrs_match)
 _TSQI_LIBRARY = 1000   # at most this many beats of the lead, evenly spread, are compared
 _TSQI_POINTS = 64      # points per beat segment (the lead is low-passed at 40 Hz)
@@ -193,7 +195,7 @@ def rhythm(w: Frames) -> dict[str, np.ndarray]:
     hr, mx, ratio = (np.full(w.n_win, np.nan) for _ in range(3))
     if rr.size:  # RRs come in window order: each window's RRs are one slice
         win, first = np.unique(wr, return_index=True)
-        med = np.array([np.median(v) for v in np.split(rr, first[1:])])
+        med = group_medians(rr, wr)
         big, small = np.maximum.reduceat(rr, first), np.minimum.reduceat(rr, first)
         hr[win] = 60.0 / med
         mx[win] = big

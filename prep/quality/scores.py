@@ -10,6 +10,7 @@ from functools import lru_cache
 import numpy as np
 from scipy import signal
 
+from prep.arrays import sorted_median
 from prep.quality.faults import window_fraction
 
 
@@ -53,7 +54,11 @@ def template_corr(beats: np.ndarray, n_template: int, stride: int = 8) -> np.nda
     first = np.clip(np.arange(n) - w // 2, 0, n - w)  # first beat of each beat's template window
     first = (first // stride) * stride
     anchors = np.unique(first)
-    tpls = np.stack([np.median(b[a:a + w], axis=0) for a in anchors])  # one per anchor
+    # one template per anchor, all at once: a (anchors, leads, points, w) view, median over w
+    # (in blocks of anchors, so a day-long record does not hold every window at once)
+    win = np.lib.stride_tricks.sliding_window_view(b, w, axis=0)
+    tpls = np.concatenate([sorted_median(win[anchors[s:s + 512]])
+                           for s in range(0, anchors.size, 512)])
     which = np.searchsorted(anchors, first)
     for a in range(0, n, 4096):
         i = np.arange(a, min(n, a + 4096))

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, signal
 
+from prep.arrays import group_medians
 from prep.config import RpeaksConfig
 from prep.model import StageLog
 from prep.stages._checks import as_signal
@@ -184,20 +185,8 @@ def window_template_quality(band: np.ndarray, peaks: np.ndarray, fs: float,
     tpl = tpl - tpl.mean()
     c = (seg @ tpl) / np.sqrt((seg * seg).sum(1) * (tpl @ tpl) + 1e-30)
     win = (p / (window_s * fs)).astype(np.int64)
-    out[np.unique(win)] = _group_medians(c, win)
+    out[np.unique(win)] = group_medians(c, win)
     return out
-
-
-def _group_medians(v: np.ndarray, group: np.ndarray) -> np.ndarray:
-    """Median of ``v`` within each value of the sorted ``group`` (in group order), as pandas'
-    ``groupby(...).median()`` computes it (the middle value, or the mean of the two middle ones),
-    for all groups at once."""
-    order = np.lexsort((v, group))
-    s = v[order]
-    _, first, size = np.unique(group[order], return_index=True, return_counts=True)
-    lo = s[first + (size - 1) // 2]
-    hi = s[first + size // 2]
-    return np.where(size % 2 == 1, lo, (lo + hi) / 2)
 
 
 @dataclass

@@ -123,7 +123,7 @@ def test_running_median_and_group_medians_are_pandas(n_values):
     import pandas as pd
 
     from prep.stages._fusion import running_median, running_quantile
-    from prep.stages.rpeaks import _group_medians
+    from prep.arrays import group_medians
     rng = np.random.default_rng(n_values)
     for v in (rng.normal(size=n_values), np.round(rng.normal(size=n_values) * 3)):
         ref = pd.Series(v).rolling(9, center=True, min_periods=1).median().to_numpy()
@@ -133,5 +133,5 @@ def test_running_median_and_group_medians_are_pandas(n_values):
             np.testing.assert_array_equal(running_quantile(v, n, q), ref)
         if n_values:
             g = np.sort(rng.integers(0, 5, n_values))
-            np.testing.assert_array_equal(_group_medians(v, g),
+            np.testing.assert_array_equal(group_medians(v, g),
                                           pd.Series(v).groupby(g).median().to_numpy())
