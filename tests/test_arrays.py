@@ -2,7 +2,7 @@
 import numpy as np
 import pytest
 
-from prep.arrays import group_medians, sorted_median
+from prep.arrays import group_medians, kth_largest, sorted_median
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 30, 31])
@@ -26,3 +26,17 @@ def test_group_medians_are_numpy_medians_per_group():
     _, first = np.unique(g, return_index=True)
     ref = np.array([np.median(s) for s in np.split(v, first[1:])])
     np.testing.assert_array_equal(group_medians(v, g), ref)
+
+
+@pytest.mark.parametrize("k", [1, 2, 3, 8, 9, 40])
+def test_kth_largest_is_numpy_partition(k):
+    # numpy (the registry library) is the reference: np.partition(c, n - k, axis=1)[:, n - k],
+    # with ties, -inf (a beat's match with itself) and NaN in the rows
+    rng = np.random.default_rng(k)
+    c = np.round(rng.normal(size=(300, 50)) * 4).astype(np.float32)
+    c[np.arange(300), rng.integers(0, 50, 300)] = -np.inf
+    c[::37, 3] = np.nan
+    ref = np.partition(c, 50 - k, axis=1)[:, 50 - k]
+    np.testing.assert_array_equal(kth_largest(c.copy(), k), ref)
+    with pytest.raises(ValueError, match="k must be"):
+        kth_largest(c.copy(), 51)

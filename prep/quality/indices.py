@@ -16,7 +16,7 @@ from typing import Callable
 
 import numpy as np
 
-from prep.arrays import group_medians
+from prep.arrays import group_medians, kth_largest
 
 _TSQI_K = 3            # a beat must resemble this many other beats of its lead (as qrs_match)
 _TSQI_LIBRARY = 1000   # at most this many beats of the lead, evenly spread, are compared
@@ -300,7 +300,7 @@ def beat_similarity(x: np.ndarray, r: np.ndarray, fs: float, k: int = _TSQI_K,
         c = seg[i] @ lib.T
         own = pos_in_lib[i] >= 0
         c[np.flatnonzero(own), pos_in_lib[i][own]] = -np.inf
-        out[ok[i]] = np.partition(c, c.shape[1] - kk, axis=1)[:, c.shape[1] - kk]
+        out[ok[i]] = kth_largest(c, kk)
     return out
 
 

@@ -92,8 +92,16 @@ def group(code: str) -> str:
     return GROUPS.get(code, "beat")
 
 
+#: the order codes are joined in: the order of the tables above
+_ORDER = {c: i for i, c in enumerate(list(REASONS) + [f for f in FLAGS if f not in REASONS])}
+
+
 def join(codes) -> str:
-    """';'-join codes in a stable order (the order of the tables above), without repeats."""
-    order = list(REASONS) + [f for f in FLAGS if f not in REASONS]
-    uniq = set(codes)
-    return ";".join(c for c in order if c in uniq)
+    """';'-join codes in a stable order (the order of the tables above), without repeats.
+
+    >>> join(["noisy_window", "annotated_noise", "noisy_window"])
+    'noisy_window;annotated_noise'
+    """
+    if not codes:
+        return ""
+    return ";".join(sorted({c for c in codes if c in _ORDER}, key=_ORDER.__getitem__))

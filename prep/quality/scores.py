@@ -10,7 +10,7 @@ from functools import lru_cache
 import numpy as np
 from scipy import signal
 
-from prep.arrays import sorted_median
+from prep.arrays import kth_largest, sorted_median
 from prep.quality.faults import window_fraction
 
 
@@ -118,7 +118,7 @@ def qrs_match(y: np.ndarray, r: np.ndarray, usable: np.ndarray, library: np.ndar
             C = B @ L.T
             own = self_of[i] >= 0
             C[np.flatnonzero(own), self_of[i][own]] = -np.inf
-            out[i] = np.partition(C, C.shape[1] - k, axis=1)[:, C.shape[1] - k]
+            out[i] = kth_largest(C, k)
     return out
 
 

@@ -86,12 +86,12 @@ def _detect(x, fs: float, cfg: RpeaksConfig, envelope=None):
     """:func:`detect_lead`, also returning the QRS energy of every sample relative to the local
     reference (the envelope's maximum within ``fuse_window_ms`` over the reference height of the
     nearest candidate): 1 is a typical beat, ``searchback_threshold`` the least the detector
-    ever takes for a beat. ``envelope``: the lead's (envelope, band) when the caller computed
-    them for several leads at once."""
+    ever takes for a beat. ``envelope``: the lead's (envelope, band, envelope maximum within
+    ``fuse_window_ms``) when the caller computed them for several leads at once."""
     x = as_signal(x, fs, "detect_lead", min_samples=8)
     if x.ndim != 1:
         raise ValueError(f"detect_lead: one lead expected, got shape {x.shape}")
-    env, band = qrs_envelope(x, fs) if envelope is None else envelope
+    env, band, near = (*qrs_envelope(x, fs), None) if envelope is None else envelope
     dist = max(1, int(round(cfg.refractory_ms * fs / 1000)))
     cand, _ = signal.find_peaks(env, distance=int(round(0.2 * fs)))
     if cand.size == 0 or np.max(env) <= 0:
@@ -134,10 +134,16 @@ def _detect(x, fs: float, cfg: RpeaksConfig, envelope=None):
         bad = bad[np.r_[True, np.diff(bad) > 1]]
         acc = np.delete(acc, bad)
     conf = env[acc] / ref[np.clip(np.searchsorted(cand, acc), 0, cand.size - 1)]
-    tol = max(1, int(round(cfg.fuse_window_ms * fs / 1000)))
-    near = ndimage.maximum_filter1d(env, 2 * tol + 1, mode="nearest")
+    if near is None:
+        near = _near_max(env, fs, cfg)
     energy = near / np.interp(np.arange(x.size), cand, ref)
     return acc.astype(np.int64), conf, band, energy
+
+
+def _near_max(env: np.ndarray, fs: float, cfg: RpeaksConfig) -> np.ndarray:
+    """The envelope's maximum within +-``fuse_window_ms`` of each sample (..., n_samples)."""
+    tol = max(1, int(round(cfg.fuse_window_ms * fs / 1000)))
+    return ndimage.maximum_filter1d(env, 2 * tol + 1, axis=-1, mode="nearest")
 
 
 def lead_polarity(x: np.ndarray, peaks: np.ndarray, half: int) -> int:
@@ -210,8 +216,9 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
     dist = max(1, int(round(cfg.refractory_ms * fs / 1000)))
     leads = np.flatnonzero(usable)
     env, bands = qrs_envelope(x[leads], fs)  # one filter pass over all usable leads
+    near = _near_max(env, fs, cfg)
     for i, j in enumerate(leads):
-        p, c, band, energy = _detect(x[j], fs, cfg, (env[i], bands[i]))
+        p, c, band, energy = _detect(x[j], fs, cfg, (env[i], bands[i], near[i]))
         r, pol = refine_r(x[j], p, fs, cfg.refine_window_ms)
         # refinement can bring two peaks together; keep the more confident one
         keep = _sparse_refractory(r, c + 1e-9, dist)

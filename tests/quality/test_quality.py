@@ -265,3 +265,28 @@ def test_lead_faults_of_all_leads_at_once_equal_lead_by_lead():
     assert masks[0]["flat"][500:800].all() and masks[1]["clipped"].any()
     assert masks[2]["flat"].all() and not masks[2]["clipped"].any()
     assert masks[4]["clipped"][100:103].all()             # 6 recorded samples at the maximum
+
+
+def test_copied_leads_finds_exact_copies_only():
+    # the definition is the reference: lead k is a copy of the first earlier lead j (not itself
+    # a copy) with np.array_equal(x[j], x[k], equal_nan=True); near-copies that agree at most
+    # samples (the prefilter's blind spot) must not count
+    from prep.quality.faults import copied_leads
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(8, 3000))
+    x[0, 100:140] = np.nan
+    x[3] = x[0]
+    x[5] = x[0]
+    x[6] = x[1]
+    x[6, 1] += 1e-9           # differs at one sample no probe reads
+    x[7] = x[2]
+    x[7, 500] = np.nan        # a NaN where the original has a value
+    ref = []
+    taken = set()
+    for k in range(1, 8):
+        for j in range(k):
+            if j not in taken and np.array_equal(x[j], x[k], equal_nan=True):
+                ref.append((j, k))
+                taken.add(k)
+                break
+    assert copied_leads(x) == ref == [(0, 3), (0, 5)]
