@@ -1,8 +1,10 @@
 """The shared array helpers return exactly what the numpy call they replace returns."""
+import warnings
+
 import numpy as np
 import pytest
 
-from prep.arrays import group_medians, kth_largest, sorted_median
+from prep.arrays import group_medians, kth_largest, nan_median_rows, sorted_median
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 30, 31])
@@ -40,3 +42,19 @@ def test_kth_largest_is_numpy_partition(k):
     np.testing.assert_array_equal(kth_largest(c.copy(), k), ref)
     with pytest.raises(ValueError, match="k must be"):
         kth_largest(c.copy(), 51)
+
+
+def test_nan_median_rows_is_numpy_nanmedian():
+    # numpy (the registry library) is the reference: np.nanmedian(w, axis=1), rows of 1-7
+    # values with NaN anywhere, ties, and rows of NaN only (NaN, as nanmedian gives)
+    rng = np.random.default_rng(11)
+    for n in range(1, 8):
+        w = np.round(rng.normal(size=(400, n)) * 3, 1)
+        w[rng.random((400, n)) < 0.3] = np.nan
+        w[0] = np.nan
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # "All-NaN slice"
+            ref = np.nanmedian(w, axis=1)
+        assert np.isnan(ref).any()
+        np.testing.assert_array_equal(nan_median_rows(w), ref)
+    assert nan_median_rows(np.zeros((3, 0))).shape == (3,)

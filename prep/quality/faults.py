@@ -16,8 +16,8 @@ def _runs(mask: np.ndarray, min_len: int) -> np.ndarray:
     starts, ends = np.flatnonzero(d == 1), np.flatnonzero(d == -1)
     long = (ends - starts) >= min_len
     out = np.zeros(mask.size + 1, np.int32)
-    np.add.at(out, starts[long], 1)
-    np.add.at(out, ends[long], -1)
+    out[starts[long]] += 1  # starts are distinct, and so are ends: no index repeats
+    out[ends[long]] -= 1
     return np.cumsum(out[:-1]) > 0
 
 
@@ -132,11 +132,11 @@ def copied_leads(x: np.ndarray) -> list[tuple[int, int]]:
     # only leads alike at 256 spread samples can be copies; only those are compared in full
     # (NaN is read as -inf in the probe: a prefilter, the full comparison decides)
     probe = x[:, np.linspace(0, x.shape[1] - 1, min(256, x.shape[1])).astype(np.int64)]
-    _, kind = np.unique(np.where(np.isnan(probe), -np.inf, probe), axis=0, return_inverse=True)
-    kind = np.asarray(kind).ravel()
+    probe = np.where(np.isnan(probe), -np.inf, probe)
+    alike = (probe[:, None, :] == probe[None, :, :]).all(axis=-1)
     for k in range(1, x.shape[0]):
         for j in range(k):
-            if (kind[j] == kind[k] and j not in taken
+            if (alike[j, k] and j not in taken
                     and np.array_equal(x[j], x[k], equal_nan=True)):
                 out.append((j, k))
                 taken.add(k)

@@ -10,7 +10,7 @@ from functools import lru_cache
 import numpy as np
 from scipy import signal
 
-from prep.arrays import kth_largest, sorted_median
+from prep.arrays import kth_largest, nan_median_rows, sorted_median
 from prep.quality.faults import window_fraction
 
 
@@ -128,12 +128,7 @@ def masked_median(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
     >>> masked_median(np.array([[1.0, 3.0], [2.0, 9.0]]), np.array([[True, True], [True, False]]))
     array([2., 2.])
     """
-    w = np.where(mask, v, np.nan)
-    ok = mask.any(axis=1)
-    out = np.full(v.shape[0], np.nan)
-    if ok.any():
-        out[ok] = np.nanmedian(w[ok], axis=1)
-    return out
+    return nan_median_rows(np.where(mask, v, np.nan))
 
 
 def detector_agreement(r: np.ndarray, other: dict[int, np.ndarray], usable: np.ndarray,

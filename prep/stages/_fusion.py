@@ -91,7 +91,8 @@ def primary_lead(quality: list[np.ndarray]) -> int:
     """Index of the lead with the best median window quality (ties: the first)."""
     if not quality:
         return 0
-    med = [np.nanmedian(q) if np.isfinite(q).any() else -1.0 for q in quality]
+    med = [float(np.median(q[~np.isnan(q)])) if np.isfinite(q).any() else -1.0
+           for q in quality]  # np.nanmedian's value, without its slow path for short arrays
     return int(np.argmax(med))
 
 
