@@ -203,8 +203,9 @@ def _grade_leads(st: _State) -> None:
     res.logs.append(StageLog("windows", params={k: getattr(cfg.windows, k)
                                                 for k in cfg.windows.__dataclass_fields__},
                              derived={"window_samples": st.L, "second_detector": SECOND_DETECTOR},
-                             counts={g: int((res.windows.grade == g).sum())
-                                     for g in ("good", "noisy", "unusable")}))
+                             counts=dict(zip(("good", "noisy", "unusable"), np.bincount(
+                                 np.concatenate([st.grades[j] for j in range(len(rec.leads))]),
+                                 minlength=3).tolist()))))
 
 
 def _grade_at(st: _State, lead: int, r: np.ndarray, per_window: dict | None = None) -> np.ndarray:

@@ -9,6 +9,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from prep.arrays import sorted_median
 from prep.config import RpeaksConfig
 
 PRUNE_RR = 1.4           # the detector's pruning rule, reused by between_beats (tuned, docs/rpeaks.md)
@@ -91,7 +92,7 @@ def primary_lead(quality: list[np.ndarray]) -> int:
     """Index of the lead with the best median window quality (ties: the first)."""
     if not quality:
         return 0
-    med = [float(np.median(q[~np.isnan(q)])) if np.isfinite(q).any() else -1.0
+    med = [float(sorted_median(q[~np.isnan(q)])) if np.isfinite(q).any() else -1.0
            for q in quality]  # np.nanmedian's value, without its slow path for short arrays
     return int(np.argmax(med))
 
