@@ -179,19 +179,44 @@ def window_template_quality(band: np.ndarray, peaks: np.ndarray, fs: float,
     One value per ``window_s`` window of the record (NaN where the window holds no beat):
     the template-matching SQI of Orphanidou et al. (2015), computed on the 5-20 Hz band.
     """
-    n_win = int(np.ceil(band.size / (window_s * fs)))
-    out = np.full(max(n_win, 1), np.nan)
+    return template_quality_rows(band[None], [peaks], fs, window_s)[0]
+
+
+def template_quality_rows(bands: np.ndarray, peaks: list[np.ndarray], fs: float,
+                          window_s: float = QUALITY_WINDOW_S) -> list[np.ndarray]:
+    """:func:`window_template_quality` of every row of ``bands`` (n_leads, n) with its
+    ``peaks``, all leads at once: the same values as lead by lead (each lead's template is the
+    median of its own beats, taken from one sort of all leads' beats padded with NaN)."""
+    n = bands.shape[-1]
+    n_win = max(int(np.ceil(n / (window_s * fs))), 1)
+    out = [np.full(n_win, np.nan) for _ in peaks]
     h = int(round(0.1 * fs))
-    p = peaks[(peaks >= h) & (peaks < band.size - h)]
-    if p.size < 3:
+    ps = [p[(p >= h) & (p < n - h)] for p in peaks]
+    rows = [i for i, p in enumerate(ps) if p.size >= 3]
+    if not rows:
         return out
-    seg = band[p[:, None] + np.arange(-h, h + 1)]
-    seg = seg - seg.mean(1, keepdims=True)
-    tpl = np.median(seg, 0)
-    tpl = tpl - tpl.mean()
-    c = (seg @ tpl) / np.sqrt((seg * seg).sum(1) * (tpl @ tpl) + 1e-30)
-    win = (p / (window_s * fs)).astype(np.int64)
-    out[np.unique(win)] = group_medians(c, win)
+    cnt = np.array([ps[i].size for i in rows])
+    off = np.arange(-h, h + 1)
+    seg = np.full((len(rows), int(cnt.max()), off.size), np.nan)
+    for a, i in enumerate(rows):
+        s = bands[i][ps[i][:, None] + off]
+        seg[a, :cnt[a]] = s - s.mean(1, keepdims=True)
+    srt = np.sort(seg, axis=1)  # NaN padding sorts last: each lead's middle beats are known
+    lo = srt[np.arange(len(rows)), (cnt - 1) // 2]
+    hi = srt[np.arange(len(rows)), cnt // 2]
+    tpl = np.where((cnt % 2 == 1)[:, None], lo, (lo + hi) / 2)
+    tpl = tpl - tpl.mean(axis=1, keepdims=True)
+    corr, group = [], []
+    for a, i in enumerate(rows):
+        sg, t = seg[a, :cnt[a]], tpl[a]
+        corr.append((sg @ t) / np.sqrt((sg * sg).sum(1) * (t @ t) + 1e-30))
+        group.append(a * n_win + (ps[i] / (window_s * fs)).astype(np.int64))
+    group = np.concatenate(group)  # sorted: rows in order, windows in order within a row
+    med = group_medians(np.concatenate(corr), group)
+    g = np.unique(group)
+    for a, i in enumerate(rows):
+        mine = g // n_win == a
+        out[i][g[mine] % n_win] = med[mine]
     return out
 
 
@@ -226,8 +251,9 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
         r, c = r[sel], c[sel]
         _, first = np.unique(r, return_index=True)
         r, c = r[first], c[first]
-        out.append(LeadDetections(int(j), r, c, band, window_template_quality(band, r, fs), pol,
-                                  energy))
+        out.append(LeadDetections(int(j), r, c, band, None, pol, energy))
+    for d, q in zip(out, template_quality_rows(bands, [d.r for d in out], fs)):
+        d.quality = q  # all leads' window template quality at once
     return out
 
 

@@ -135,3 +135,31 @@ def test_running_median_and_group_medians_are_pandas(n_values):
             g = np.sort(rng.integers(0, 5, n_values))
             np.testing.assert_array_equal(group_medians(v, g),
                                           pd.Series(v).groupby(g).median().to_numpy())
+
+
+def test_template_quality_of_all_leads_at_once_is_lead_by_lead():
+    # the reference is the definition, lead by lead with numpy: template = np.median of the
+    # lead's +-100 ms segments (mean removed), correlation of each beat with it, median per 10-s
+    # window (Orphanidou et al. 2015); leads with fewer than three beats give NaN
+    from prep.stages.rpeaks import template_quality_rows
+    fs, n = 250.0, 250 * 35
+    rng = np.random.default_rng(4)
+    bands = rng.normal(size=(4, n))
+    peaks = [np.sort(rng.choice(np.arange(30, n - 30), size=k, replace=False))
+             for k in (40, 2, 17, 60)]
+    got = template_quality_rows(bands, peaks, fs)
+    h = 25
+    for band, p, q in zip(bands, peaks, got):
+        p = p[(p >= h) & (p < n - h)]
+        ref = np.full(4, np.nan)
+        if p.size >= 3:
+            seg = band[p[:, None] + np.arange(-h, h + 1)]
+            seg = seg - seg.mean(1, keepdims=True)
+            tpl = np.median(seg, 0)
+            tpl = tpl - tpl.mean()
+            c = (seg @ tpl) / np.sqrt((seg * seg).sum(1) * (tpl @ tpl) + 1e-30)
+            win = (p / (10 * fs)).astype(int)
+            for w in np.unique(win):
+                ref[w] = np.median(c[win == w])
+        np.testing.assert_array_equal(q, ref)
+    assert np.isnan(got[1]).all() and np.isfinite(got[3]).all()
