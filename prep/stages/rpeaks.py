@@ -146,30 +146,40 @@ def _near_max(env: np.ndarray, fs: float, cfg: RpeaksConfig) -> np.ndarray:
     return ndimage.maximum_filter1d(env, 2 * tol + 1, axis=-1, mode="nearest")
 
 
-def lead_polarity(x: np.ndarray, peaks: np.ndarray, half: int) -> int:
-    """+1 when the lead's QRS points up (median positive peak larger), else -1."""
-    if peaks.size == 0:
-        return 1
-    seg = x[np.clip(peaks[:, None] + np.arange(-half, half + 1), 0, x.size - 1)]
-    return 1 if np.median(seg.max(1)) >= np.median(-seg.min(1)) else -1
-
-
 def refine_r(x: np.ndarray, peaks: np.ndarray, fs: float, window_ms: float) -> tuple[np.ndarray, int]:
     """Move each peak to the QRS extremum within +-``window_ms`` in the filtered lead ``x``.
 
-    The extremum follows the lead's polarity (so inverted leads work), except in a beat whose
+    The extremum follows the lead's polarity (+1 when the median positive peak of its beats is
+    at least the median negative one, else -1; so inverted leads work), except in a beat whose
     opposite deflection is over 1.5 times larger (an ectopic beat of other polarity).
     """
+    return refine_rows(x[None], [peaks], fs, window_ms)[0]
+
+
+def refine_rows(x: np.ndarray, peaks: list[np.ndarray], fs: float, window_ms: float
+                ) -> list[tuple[np.ndarray, int]]:
+    """:func:`refine_r` of every row of ``x`` (n_leads, n) with its ``peaks``, all at once:
+    (refined R, polarity) per row, the same as row by row (the polarity medians per lead by
+    :func:`prep.arrays.group_medians`)."""
     half = int(round(window_ms * fs / 1000))
-    pol = lead_polarity(x, peaks, max(half, 1))
-    if peaks.size == 0 or half == 0:
-        return peaks.copy(), pol
-    idx = np.clip(peaks[:, None] + np.arange(-half, half + 1), 0, x.size - 1)
-    seg = x[idx]
+    sizes = [p.size for p in peaks]
+    pol = np.ones(len(peaks), np.int64)
+    if sum(sizes) == 0:
+        return [(p.copy(), 1) for p in peaks]
+    lead = np.repeat(np.arange(len(peaks)), sizes)
+    at = np.concatenate(peaks)
+    h = max(half, 1)
+    idx = np.clip(at[:, None] + np.arange(-h, h + 1), 0, x.shape[-1] - 1)
+    seg = x[lead[:, None], idx]
     up, down = seg.max(1), -seg.min(1)
-    use_up = (up >= down / 1.5) if pol > 0 else (up > 1.5 * down)
+    seen = np.unique(lead)
+    pol[seen] = np.where(group_medians(up, lead) >= group_medians(down, lead), 1, -1)
+    if half == 0:
+        return [(p.copy(), int(q)) for p, q in zip(peaks, pol)]
+    use_up = np.where(pol[lead] > 0, up >= down / 1.5, up > 1.5 * down)
     pos = np.where(use_up, seg.argmax(1), seg.argmin(1))
-    return idx[np.arange(len(peaks)), pos].astype(np.int64), pol
+    r = np.split(idx[np.arange(at.size), pos].astype(np.int64), np.cumsum(sizes)[:-1])
+    return [(ri, int(q)) for ri, q in zip(r, pol)]
 
 
 def window_template_quality(band: np.ndarray, peaks: np.ndarray, fs: float,
@@ -242,9 +252,9 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
     leads = np.flatnonzero(usable)
     env, bands = qrs_envelope(x[leads], fs)  # one filter pass over all usable leads
     near = _near_max(env, fs, cfg)
-    for i, j in enumerate(leads):
-        p, c, band, energy = _detect(x[j], fs, cfg, (env[i], bands[i], near[i]))
-        r, pol = refine_r(x[j], p, fs, cfg.refine_window_ms)
+    found = [_detect(x[j], fs, cfg, (env[i], bands[i], near[i])) for i, j in enumerate(leads)]
+    refined = refine_rows(x[leads], [f[0] for f in found], fs, cfg.refine_window_ms)
+    for j, (_, c, band, energy), (r, pol) in zip(leads, found, refined):
         # refinement can bring two peaks together; keep the more confident one
         keep = _sparse_refractory(r, c + 1e-9, dist)
         sel = np.isin(r, keep)

@@ -163,3 +163,29 @@ def test_template_quality_of_all_leads_at_once_is_lead_by_lead():
                 ref[w] = np.median(c[win == w])
         np.testing.assert_array_equal(q, ref)
     assert np.isnan(got[1]).all() and np.isfinite(got[3]).all()
+
+
+def test_refinement_of_all_leads_at_once_is_lead_by_lead():
+    # the reference is the definition, lead by lead: polarity +1 when np.median of the beats'
+    # maxima within +-window is at least that of their negated minima; each peak moves to the
+    # extremum of that polarity unless the other deflection is over 1.5 times larger
+    from prep.stages.rpeaks import refine_rows
+    fs, n = 250.0, 5000
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=(4, n)).cumsum(axis=1) * 0.05
+    x[2] *= -1
+    peaks = [np.sort(rng.choice(np.arange(n), size=k, replace=False)) for k in (30, 0, 25, 1)]
+    got = refine_rows(x, peaks, fs, 60.0)
+    half = 15
+    for row, p, (r, pol) in zip(x, peaks, got):
+        if p.size == 0:
+            assert r.size == 0 and pol == 1
+            continue
+        idx = np.clip(p[:, None] + np.arange(-half, half + 1), 0, n - 1)
+        seg = row[idx]
+        ref_pol = 1 if np.median(seg.max(1)) >= np.median(-seg.min(1)) else -1
+        up, down = seg.max(1), -seg.min(1)
+        use_up = (up >= down / 1.5) if ref_pol > 0 else (up > 1.5 * down)
+        ref = idx[np.arange(p.size), np.where(use_up, seg.argmax(1), seg.argmin(1))]
+        assert pol == ref_pol
+        np.testing.assert_array_equal(r, ref)
