@@ -327,15 +327,17 @@ def _average_sqi(x: np.ndarray, r: np.ndarray, w: np.ndarray, fs: float, n_win: 
     seg = x[r[:, None] + np.arange(-a, b)]
     seg = seg - seg.mean(axis=1, keepdims=True)
     tpl = np.zeros((n_win, seg.shape[1]))
-    # the sum of each window's beats, in beat order as np.add.at adds (w is sorted): step k adds
-    # the k-th beat of every window at once, so the steps are the most beats in one window
-    _, first, cnt_w = np.unique(w, return_index=True, return_counts=True)
-    rank = np.arange(w.size) - np.repeat(first, cnt_w)
-    by_rank = np.argsort(rank, kind="stable")
-    edges = np.searchsorted(rank[by_rank], np.arange(cnt_w.max() + 1))
-    for k in range(cnt_w.max()):
-        i = by_rank[edges[k]:edges[k + 1]]
-        tpl[w[i]] += seg[i]
+    if w.size < 256:  # a short record: np.add.at's cost per beat is small next to the steps'
+        np.add.at(tpl, w, seg)
+    else:  # the sum of each window's beats in beat order, as np.add.at adds (w is sorted):
+        # step k adds the k-th beat of every window at once (steps: the most beats in a window)
+        _, first, cnt_w = np.unique(w, return_index=True, return_counts=True)
+        rank = np.arange(w.size) - np.repeat(first, cnt_w)
+        by_rank = np.argsort(rank, kind="stable")
+        edges = np.searchsorted(rank[by_rank], np.arange(cnt_w.max() + 1))
+        for k in range(cnt_w.max()):
+            i = by_rank[edges[k]:edges[k + 1]]
+            tpl[w[i]] += seg[i]
     cnt = np.bincount(w, minlength=n_win)[:n_win]
     tpl /= np.maximum(cnt, 1)[:, None]
     t = tpl[w]

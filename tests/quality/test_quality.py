@@ -290,3 +290,26 @@ def test_copied_leads_finds_exact_copies_only():
                 taken.add(k)
                 break
     assert copied_leads(x) == ref == [(0, 3), (0, 5)]
+
+
+@pytest.mark.parametrize("n_beats", [40, 600])  # both ways of summing the windows' beats
+def test_average_sqi_is_the_mean_correlation_with_the_window_average(n_beats):
+    # Orphanidou et al. (2015): each beat (-150..+350 ms, mean removed) correlated with the
+    # average beat of its window; the window's value is the mean correlation (>= 2 beats)
+    from prep.quality.indices import _average_sqi
+    fs = 250.0
+    rng = np.random.default_rng(n_beats)
+    x = rng.normal(size=int(fs * 10 * 30))
+    r = np.sort(rng.choice(np.arange(100, x.size - 100), n_beats, replace=False))
+    w = (r // int(10 * fs)).astype(np.int64)
+    got = _average_sqi(x, r, w, fs, 30)
+    a, b = 38, 88
+    ref = np.full(30, np.nan)
+    for k in range(30):
+        seg = np.array([x[i - a:i + b] for i in r[w == k]])
+        if len(seg) < 2:
+            continue
+        seg = seg - seg.mean(axis=1, keepdims=True)
+        t = seg.mean(axis=0)
+        ref[k] = np.mean([(s @ t) / np.sqrt((s @ s) * (t @ t)) for s in seg])
+    np.testing.assert_allclose(got, ref, rtol=1e-9, atol=1e-12)
