@@ -1,7 +1,7 @@
 """Small array helpers shared by the stages and the quality package (core: imports numpy only).
 
-Both return exactly the values of the numpy/pandas call they replace (tests/test_arrays.py
-checks them against those references), only faster on many short groups.
+Each returns exactly the values of the numpy call it replaces (tests/test_arrays.py checks them
+against those references), only faster on many short rows or groups.
 """
 from __future__ import annotations
 

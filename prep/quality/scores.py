@@ -57,8 +57,8 @@ def template_corr(beats: np.ndarray, n_template: int, stride: int = 8) -> np.nda
     # one template per anchor, all at once: a (anchors, leads, points, w) view, median over w
     # (in blocks of anchors, so a day-long record does not hold every window at once)
     win = np.lib.stride_tricks.sliding_window_view(b, w, axis=0)
-    tpls = np.concatenate([sorted_median(win[anchors[s:s + 512]])
-                           for s in range(0, anchors.size, 512)])
+    tpls = np.concatenate([sorted_median(win[anchors[s:s + 128]])
+                           for s in range(0, anchors.size, 128)])
     which = np.searchsorted(anchors, first)
     for a in range(0, n, 4096):
         i = np.arange(a, min(n, a + 4096))
