@@ -34,8 +34,8 @@ from prep.quality.faults import (copied_leads, fault_reason, lead_faults, usable
                                  window_fraction)
 from prep.quality.rules import BeatEvidence, clean_median_rr, decide, quality_log
 from prep.quality.scores import cut_beat_scores, detector_agreement, high_freq, qrs_match
-from prep.quality.windows import (grade_codes, join_columns, main_fault, signal_index_columns,
-                                  window_columns)
+from prep.quality.windows import (add_verdicts, grade_codes, join_columns, main_fault,
+                                  signal_index_columns, window_columns)
 from prep.schema import empty_beats
 from prep.stages._fusion import PRUNE_RR
 from prep.stages.bandpass import bandpass
@@ -173,11 +173,14 @@ def _grade_leads(st: _State) -> None:
         w = window_columns(st.notched[j], st.y[j], st.masks[j], fs,
                            st.dets[j].r if j in st.dets else empty, st.other.get(j, empty),
                            st.mains, cfg.windows, grade=cfg.windows.enabled,
-                           signal_columns=signal[j])
+                           signal_columns=signal[j], verdicts=False)
+        tables.append(w)
+    if cfg.windows.enabled:
+        add_verdicts(tables, cfg.windows)  # every lead's windows graded in one pass
+    for j, w in enumerate(tables):
         st.grades[j] = grade_codes(w["grade"])
         st.rhythm[j] = np.asarray(w["rhythm_findings"], dtype=object) != ""
         st.one_shape[j] = np.nan_to_num(w["tsqi_average"], nan=-1) >= cfg.windows.tsqi_noisy
-        tables.append(w)
     res.windows = join_columns(tables)
     res.windows.insert(0, "lead", np.repeat(np.array(rec.leads, dtype=object),
                                             [len(w["start"]) for w in tables]))

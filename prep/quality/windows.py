@@ -67,12 +67,13 @@ def lead_windows(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.nd
 def window_columns(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.ndarray],
                    fs: float, ours: np.ndarray, other: np.ndarray, mains_hz: float | None,
                    cfg: WindowsConfig = WindowsConfig(), grade: bool = True,
-                   signal_columns: dict | None = None) -> dict:
+                   signal_columns: dict | None = None, verdicts: bool = True) -> dict:
     """:func:`lead_windows` as a mapping of column name -> values (numpy arrays, lists for the
     text columns), in the table's column order: the pipeline joins the leads' columns into one
     table per record instead of building a table per lead. ``signal_columns``: this lead's
     index results of :data:`prep.quality.indices.SIGNAL_INDICES` (by function name) from
-    :func:`signal_index_columns`."""
+    :func:`signal_index_columns`. ``verdicts=False`` leaves ``grade``, ``decided_by`` and
+    ``rhythm_findings`` None, for :func:`add_verdicts` to fill for all leads at once."""
     fr = Frames(filtered, notched, fs, int(round(cfg.window_s * fs)), ours, other, mains_hz)
     out = {"start": fr.starts, "end": fr.starts + fr.count.astype(np.int64)}
     out.update(fault_shares(bad, fr.starts, fr.count))
@@ -85,8 +86,28 @@ def window_columns(notched: np.ndarray, filtered: np.ndarray, bad: dict[str, np.
             out.update(signal_columns[index.__name__])
         else:
             out.update(index(fr))
+    if not verdicts:
+        return _columns(out, None, None, None)
     grades, why = grade_windows(out, cfg)
     return _columns(out, grades, why, rhythm_findings(out, cfg))
+
+
+def add_verdicts(tables: list[dict], cfg: WindowsConfig = WindowsConfig()) -> None:
+    """Fill ``grade``, ``decided_by`` and ``rhythm_findings`` of several leads'
+    :func:`window_columns` (made with ``verdicts=False``) in place, by one pass of the tests over
+    all their windows: a window's verdict reads only its own row, so this is the same as lead
+    by lead (tests/quality/test_quality.py)."""
+    if not tables:
+        return
+    joined = {k: np.concatenate([np.asarray(t[k], dtype=float) for t in tables])
+              for k in INDEX_COLUMNS if k in tables[0]}
+    grades, why = grade_windows(joined, cfg)
+    rhythm = rhythm_findings(joined, cfg)
+    a = 0
+    for t in tables:
+        b = a + len(t["start"])
+        t["grade"], t["decided_by"], t["rhythm_findings"] = grades[a:b], why[a:b], rhythm[a:b]
+        a = b
 
 
 def signal_index_columns(notched: np.ndarray, filtered: np.ndarray, fs: float,

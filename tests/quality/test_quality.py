@@ -313,3 +313,30 @@ def test_average_sqi_is_the_mean_correlation_with_the_window_average(n_beats):
         t = seg.mean(axis=0)
         ref[k] = np.mean([(s @ t) / np.sqrt((s @ s) * (t @ t)) for s in seg])
     np.testing.assert_allclose(got, ref, rtol=1e-9, atol=1e-12)
+
+
+def test_verdicts_of_all_leads_at_once_are_lead_by_lead():
+    # the reference is the lead-by-lead grading (window_columns with its own verdicts): grading
+    # the leads' windows in one pass must give each lead the same grade, deciding tests and
+    # rhythm findings (a clean lead, a noisy one, an irregular one)
+    from prep.quality.windows import add_verdicts, window_columns
+    fs, n = 250.0, 250 * 60
+    rng = np.random.default_rng(2)
+    r = np.arange(100, n - 100, 200)
+    irregular = np.sort(rng.choice(np.arange(100, n - 100), r.size, replace=False))
+    leads = []
+    for k, beats in enumerate((r, r, irregular)):
+        x = np.zeros(n)
+        x[beats] = 1.0
+        x = np.convolve(x, np.hanning(15), "same") + rng.normal(0, 0.02 + 0.4 * (k == 1), n)
+        leads.append((x, beats))
+    z = np.zeros(n, bool)
+    bad = {"flat": z, "clipped": z, "missing": z}
+    each = [window_columns(x, x, bad, fs, b, b, None) for x, b in leads]
+    joint = [window_columns(x, x, bad, fs, b, b, None, verdicts=False) for x, b in leads]
+    add_verdicts(joint)
+    for a, b in zip(each, joint):
+        for col in ("grade", "decided_by", "rhythm_findings"):
+            assert list(a[col]) == list(b[col])
+    assert {g for t in each for g in t["grade"]} >= {"good", "noisy"}
+    assert any(f for f in each[2]["rhythm_findings"])
