@@ -182,21 +182,16 @@ def refine_rows(x: np.ndarray, peaks: list[np.ndarray], fs: float, window_ms: fl
     return [(ri, int(q)) for ri, q in zip(r, pol)]
 
 
-def window_template_quality(band: np.ndarray, peaks: np.ndarray, fs: float,
-                            window_s: float = QUALITY_WINDOW_S) -> np.ndarray:
-    """Median correlation of the beats in each window with the lead's QRS template (+-100 ms).
-
-    One value per ``window_s`` window of the record (NaN where the window holds no beat):
-    the template-matching SQI of Orphanidou et al. (2015), computed on the 5-20 Hz band.
-    """
-    return template_quality_rows(band[None], [peaks], fs, window_s)[0]
-
-
 def template_quality_rows(bands: np.ndarray, peaks: list[np.ndarray], fs: float,
                           window_s: float = QUALITY_WINDOW_S) -> list[np.ndarray]:
-    """:func:`window_template_quality` of every row of ``bands`` (n_leads, n) with its
-    ``peaks``, all leads at once: the same values as lead by lead (each lead's template is the
-    median of its own beats, taken from one sort of all leads' beats padded with NaN)."""
+    """Median correlation of the beats in each window with their lead's QRS template (+-100
+    ms), for every row of ``bands`` (n_leads, n: the 5-20 Hz band) with its ``peaks``.
+
+    Per lead, one value per ``window_s`` window of the record (NaN where the window holds no
+    beat, all NaN with fewer than three beats): the template-matching SQI of Orphanidou et al.
+    (2015). All leads at once: each lead's template is the median of its own beats, taken from
+    one sort of all leads' beats padded with NaN.
+    """
     n = bands.shape[-1]
     n_win = max(int(np.ceil(n / (window_s * fs))), 1)
     out = [np.full(n_win, np.nan) for _ in peaks]
@@ -247,24 +242,24 @@ def detect_leads(x: np.ndarray, fs: float, usable: np.ndarray, cfg: RpeaksConfig
                  ) -> list[LeadDetections]:
     """Detect and refine beats in every usable lead of ``x`` (n_leads, n_samples)."""
     x = as_signal(x, fs, "detect_leads", min_samples=8)
-    out = []
     dist = max(1, int(round(cfg.refractory_ms * fs / 1000)))
     leads = np.flatnonzero(usable)
     env, bands = qrs_envelope(x[leads], fs)  # one filter pass over all usable leads
     near = _near_max(env, fs, cfg)
     found = [_detect(x[j], fs, cfg, (env[i], bands[i], near[i])) for i, j in enumerate(leads)]
     refined = refine_rows(x[leads], [f[0] for f in found], fs, cfg.refine_window_ms)
-    for j, (_, c, band, energy), (r, pol) in zip(leads, found, refined):
+    kept = []
+    for (_, c, _, _), (r, _) in zip(found, refined):
         # refinement can bring two peaks together; keep the more confident one
         keep = _sparse_refractory(r, c + 1e-9, dist)
         sel = np.isin(r, keep)
         r, c = r[sel], c[sel]
         _, first = np.unique(r, return_index=True)
-        r, c = r[first], c[first]
-        out.append(LeadDetections(int(j), r, c, band, None, pol, energy))
-    for d, q in zip(out, template_quality_rows(bands, [d.r for d in out], fs)):
-        d.quality = q  # all leads' window template quality at once
-    return out
+        kept.append((r[first], c[first]))
+    quality = template_quality_rows(bands, [r for r, _ in kept], fs)  # all leads at once
+    return [LeadDetections(int(j), r, c, band, q, pol, energy)
+            for j, (r, c), (_, _, band, energy), (_, pol), q
+            in zip(leads, kept, found, refined, quality)]
 
 
 def fuse_leads(dets: list[LeadDetections], n_leads: int, fs: float,
